@@ -1,0 +1,21 @@
+"""diskfield: protoplanetary-disk magnetic-field models fitted to meteorite paleointensities."""
+from __future__ import annotations
+
+__version__ = "0.1.0"
+
+from .errors import (  # noqa: E402
+    CompilationError,
+    DiskfieldError,
+    OptionError,
+    PriorFileError,
+)
+from .records import read_compilation  # noqa: E402
+
+__all__ = [
+    "__version__",
+    "DiskfieldError",
+    "CompilationError",
+    "PriorFileError",
+    "OptionError",
+    "read_compilation",
+]

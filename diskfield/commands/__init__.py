@@ -1,0 +1,1 @@
+"""One module per ``diskfield`` sub-command (see ``diskfield.cli``)."""

@@ -1,0 +1,1 @@
+"""Field-profile plug-ins: radial profiles and temporal envelopes, with a registry."""
