@@ -1,0 +1,1 @@
+"""Campaigns of many fits on Dask: simulation-based calibration and forecasts."""
