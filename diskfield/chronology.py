@@ -191,6 +191,8 @@ class AgeResult:
     reference : str
         What the age is measured against: ``"cai_ratio"``, ``"anchor:<name>"`` or
         ``"start_age"`` (Pb-Pb).
+    basis : str
+        The same in words, e.g. ``"anchored to D'Orbigny angrite (dorbigny)"``.
     components : dict of str to float
         1-sigma contribution of each input [Myr]; ``err_myr`` is their quadrature sum.
     inputs : dict
@@ -207,6 +209,7 @@ class AgeResult:
     age_myr: float
     err_myr: float
     reference: str
+    basis: str
     components: dict
     inputs: dict
     constants: dict
@@ -232,7 +235,7 @@ class AgeResult:
         """Serialisable form (JSON output)."""
         d = {"system": self.system, "age_myr": self.age_myr, "err_myr": self.err_myr,
              "shared_err_myr": self.shared_err_myr, "sample_err_myr": self.sample_err_myr,
-             "reference": self.reference, "components_myr": dict(self.components),
+             "reference": self.reference, "basis": self.basis, "components_myr": dict(self.components),
              "inputs": dict(self.inputs),
              "constants": {k: v.as_dict() for k, v in self.constants.items()},
              "warnings": list(self.warnings)}
@@ -454,10 +457,15 @@ def _anchor(constants: ChronometerConstants, anchor: str, system: str) -> Anchor
 
 # --------------------------------------------------------------------------- arithmetic
 
-def _result(system, reference, age, components, inputs, constants, warnings, cai=None):
+_BASIS = {"cai_ratio": "relative to the CAI initial ratio",
+          "start_age": "Pb-Pb relative to the CAI start age"}
+
+
+def _result(system, reference, age, components, inputs, constants, warnings, cai=None,
+            basis=None):
     err = math.hypot(*components.values())
-    return AgeResult(system, age, err, reference, components, inputs, constants,
-                     tuple(warnings), cai)
+    return AgeResult(system, age, err, reference, basis or _BASIS[reference], components,
+                     inputs, constants, tuple(warnings), cai)
 
 
 def _ratio_warnings(sys_: DecaySystem, ratio: float, ratio_err: float, age: float,
@@ -516,7 +524,7 @@ def _anchored(sys_: DecaySystem, anc: Anchor, start: Measured, ratio: float, rat
                    {"ratio": ratio, "ratio_err": ratio_err},
                    {"half_life_myr": sys_.half_life, "anchor_ratio": ra,
                     "anchor_pbpb_age_ma": anc.pbpb_age, "start_age_ma": start},
-                   warnings, cai)
+                   warnings, cai, basis=f"anchored to {anc.label} ({anc.name})")
 
 
 def age_from_ratio(system: str, ratio: float, ratio_err: float, *, anchor: str | None = None,
