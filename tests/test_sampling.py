@@ -1,0 +1,216 @@
+"""emcee driver: posterior moments, reproducibility, checkpoints and resume.
+
+Also defines the small toy models (same protocol as ``diskfield.build_model``'s Model)
+that the evidence, criteria and comparison tests import.
+"""
+from __future__ import annotations
+
+import signal
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from diskfield.errors import CheckpointError
+from diskfield.priorspec import Normal, Uniform
+from diskfield.sampling import SamplerSettings, load_checkpoint, run_sampler
+
+SEED = 20261202
+
+
+class ToyModel:
+    """A model implementing the Model protocol from a per-body log-likelihood function.
+
+    Parameters
+    ----------
+    names : sequence of str
+    priors : sequence of Prior
+    pointwise : callable
+        ``pointwise(theta (W, P)) -> (W, B)`` per-body log-likelihoods.
+    body_names : sequence of str
+    n_records : int
+    profile : str
+    """
+
+    def __init__(self, names, priors, pointwise, body_names, n_records=None, profile="toy"):
+        self.parameter_names = tuple(names)
+        self.priors = tuple(priors)
+        self.fixed = {}
+        self._pointwise = pointwise
+        self.body_names = tuple(body_names)
+        self.n_bodies = len(self.body_names)
+        self.n_records = n_records or self.n_bodies
+        self.config = {"profile": profile, "envelope": "steady", "spin": "none",
+                       "prior_files": []}
+
+    def log_prior(self, theta):
+        theta = np.atleast_2d(theta)
+        return sum(p.log_prob(theta[:, i]) for i, p in enumerate(self.priors))
+
+    def log_likelihood_pointwise(self, theta):
+        return self._pointwise(np.atleast_2d(theta))
+
+    def log_likelihood(self, theta):
+        return self.log_likelihood_pointwise(theta).sum(axis=1)
+
+    def prior_transform(self, u):
+        u = np.asarray(u, float)
+        return np.stack([p.ppf(u[..., i]) for i, p in enumerate(self.priors)], axis=-1)
+
+    def log_field(self, theta, r_au, t_myr):
+        # ln B = a - b ln r, with a, b the first two parameters (or a constant slope 1).
+        theta = np.atleast_2d(theta)
+        r = np.broadcast_to(np.asarray(r_au, float), np.broadcast(r_au, t_myr).shape)
+        extra = (1,) * r.ndim
+        a = theta[:, 0].reshape((-1,) + extra)
+        b = theta[:, 1].reshape((-1,) + extra) if theta.shape[1] > 1 else 1.0
+        return a - b * np.log(r)[None]
+
+
+def _normal_logpdf(x, mean, var):
+    return -0.5 * (x - mean) ** 2 / var - 0.5 * np.log(2 * np.pi * var)
+
+
+def conjugate_gaussian_model(n=6, sigma=0.5):
+    """Two independent means, each with ``n`` one-record bodies; N(0, 1) priors.
+
+    Returns the model and the analytic posterior (means, sds), conjugate normal
+    (Gelman et al. 2013, BDA3 §2.5).
+    """
+    rng = np.random.default_rng(7)
+    y = np.stack([rng.normal(0.8, sigma, n), rng.normal(-0.4, sigma, n)])
+
+    def pointwise(theta):
+        return np.concatenate([_normal_logpdf(y[k][None, :], theta[:, k:k + 1], sigma ** 2)
+                               for k in range(2)], axis=1)
+
+    model = ToyModel(("field_1au", "power_index"), (Normal(0, 1), Normal(0, 1)), pointwise,
+                     [f"body{k}" for k in range(2 * n)])
+    post_var = 1.0 / (1.0 + n / sigma ** 2)
+    post_mean = post_var * y.sum(axis=1) / sigma ** 2
+    return model, post_mean, np.sqrt(post_var) * np.ones(2)
+
+
+FAST = SamplerSettings(n_walkers=16, chunk=200, max_steps=2000, n_starts=2)
+
+
+def test_posterior_moments_match_conjugate_normal():
+    # source: conjugate normal posterior, Gelman et al. 2013, BDA3 §2.5
+    model, mean, sd = conjugate_gaussian_model()
+    run = run_sampler(model, seed=SEED, settings=SamplerSettings(n_walkers=16, chunk=500,
+                                                                 max_steps=6000))
+    draws = run.draws().reshape(-1, 2)
+    n_eff = run.n_steps * run.n_walkers / np.max(run.tau)
+    # Monte Carlo standard error of the mean is sd / sqrt(n_eff); 5 of them is a loose gate.
+    assert np.all(np.abs(draws.mean(axis=0) - mean) < 5 * sd / np.sqrt(n_eff))
+    # sd of a sample sd is about sd / sqrt(2 n_eff) for a Gaussian (common practice, no source)
+    assert np.all(np.abs(draws.std(axis=0) - sd) < 5 * sd / np.sqrt(2 * n_eff))
+    assert run.converged
+    assert run.draws_pointwise().shape[2] == model.n_bodies
+
+
+def test_blobs_are_the_per_body_log_likelihoods():
+    model, _, _ = conjugate_gaussian_model()
+    run = run_sampler(model, seed=SEED, settings=FAST)
+    theta = run.chain[-1]
+    np.testing.assert_allclose(run.blobs[-1], model.log_likelihood_pointwise(theta))
+    lp = model.log_prior(theta) + model.log_likelihood(theta)
+    np.testing.assert_allclose(run.log_prob[-1], lp)
+
+
+def test_optimum_is_the_analytic_maximum_likelihood():
+    model, _, _ = conjugate_gaussian_model()
+    run = run_sampler(model, seed=SEED, settings=FAST)
+    # The maximum-likelihood mean of a Gaussian is the sample mean (standard result).
+    rng = np.random.default_rng(7)
+    y = np.stack([rng.normal(0.8, 0.5, 6), rng.normal(-0.4, 0.5, 6)])
+    np.testing.assert_allclose(run.optimum_theta, y.mean(axis=1), atol=1e-3)
+
+
+def test_same_seed_is_bitwise_reproducible():
+    model, _, _ = conjugate_gaussian_model()
+    a = run_sampler(model, seed=SEED, settings=FAST)
+    b = run_sampler(model, seed=SEED, settings=FAST)
+    c = run_sampler(model, seed=SEED + 1, settings=FAST)
+    assert np.array_equal(a.chain, b.chain) and np.array_equal(a.blobs, b.blobs)
+    assert not np.array_equal(a.chain, c.chain)
+
+
+def test_stop_and_resume_gives_the_same_chain(tmp_path):
+    model, _, _ = conjugate_gaussian_model()
+    settings = SamplerSettings(n_walkers=16, chunk=100, max_steps=600, n_tau=1e9)
+    full = run_sampler(model, seed=SEED, settings=settings)
+    ckpt = tmp_path / "checkpoint.h5"
+    part = SamplerSettings(n_walkers=16, chunk=100, max_steps=300, n_tau=1e9)
+    run_sampler(model, seed=SEED, settings=part, checkpoint=ckpt, fingerprint={"model": "toy"})
+    resumed = run_sampler(model, seed=SEED, settings=settings, checkpoint=ckpt, resume=True,
+                          fingerprint={"model": "toy"})
+    for key in ("chain", "log_prob", "blobs", "n_accepted"):
+        assert np.array_equal(getattr(full, key), getattr(resumed, key)), key
+    assert not full.converged and any("unconverged" in f for f in full.flags)
+
+
+def test_checkpoint_from_another_configuration_is_refused(tmp_path):
+    model, _, _ = conjugate_gaussian_model()
+    ckpt = tmp_path / "checkpoint.h5"
+    settings = SamplerSettings(n_walkers=16, chunk=50, max_steps=50)
+    run_sampler(model, seed=SEED, settings=settings, checkpoint=ckpt,
+                fingerprint={"data_hash": "aaa", "model": "toy"})
+    with pytest.raises(CheckpointError, match="data_hash.*'aaa'.*'bbb'"):
+        run_sampler(model, seed=SEED, settings=settings, checkpoint=ckpt, resume=True,
+                    fingerprint={"data_hash": "bbb", "model": "toy"})
+    with pytest.raises(CheckpointError, match="seed"):
+        run_sampler(model, seed=SEED + 1, settings=settings, checkpoint=ckpt, resume=True,
+                    fingerprint={"data_hash": "aaa", "model": "toy"})
+    with pytest.raises(CheckpointError, match="no checkpoint"):
+        run_sampler(model, seed=SEED, settings=settings, checkpoint=tmp_path / "none.h5",
+                    resume=True)
+    (tmp_path / "junk.h5").write_bytes(b"not hdf5")
+    with pytest.raises(CheckpointError, match="unreadable"):
+        load_checkpoint(tmp_path / "junk.h5")
+
+
+_KILL_SCRIPT = textwrap.dedent("""
+    import sys, time
+    sys.path.insert(0, {tests!r})
+    import numpy as np
+    from test_sampling import conjugate_gaussian_model, SEED
+    from diskfield.sampling import SamplerSettings, run_sampler
+    model, _, _ = conjugate_gaussian_model()
+    slow = model.log_likelihood_pointwise
+    def pointwise(theta):
+        time.sleep(0.002)  # slow enough that the parent can kill mid-run
+        return slow(theta)
+    model.log_likelihood_pointwise = pointwise
+    settings = SamplerSettings(n_walkers=16, chunk=50, max_steps=int(sys.argv[2]), n_tau=1e9)
+    run = run_sampler(model, seed=SEED, settings=settings, checkpoint=sys.argv[1],
+                      resume=sys.argv[3] == "1")
+    np.save(sys.argv[1] + ".chain.npy", run.chain)
+""")
+
+
+def test_resume_after_sigkill_gives_the_same_chain(tmp_path):
+    script = tmp_path / "run.py"
+    script.write_text(_KILL_SCRIPT.format(tests=str(Path(__file__).parent)))
+    ckpt = tmp_path / "ck.h5"
+    proc = subprocess.Popen([sys.executable, str(script), str(ckpt), "100000", "0"])
+    deadline = time.time() + 60
+    while not ckpt.exists() and time.time() < deadline:
+        time.sleep(0.05)
+    time.sleep(0.3)  # let it get into a later chunk, possibly mid-write
+    proc.send_signal(signal.SIGKILL)
+    proc.wait()
+    k = load_checkpoint(ckpt)["chain"].shape[0]
+    assert k % 50 == 0 and k >= 50
+    target = k + 100
+    subprocess.run([sys.executable, str(script), str(ckpt), str(target), "1"], check=True)
+    ref = tmp_path / "ref.h5"
+    subprocess.run([sys.executable, str(script), str(ref), str(target), "0"], check=True)
+    resumed = np.load(str(ckpt) + ".chain.npy")
+    uninterrupted = np.load(str(ref) + ".chain.npy")
+    assert resumed.shape == (target, 16, 2)
+    assert np.array_equal(resumed, uninterrupted)
