@@ -15,7 +15,7 @@ Functions are pure (no state), return finite values over the prior support, and 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Callable, Mapping
+from typing import Any, Callable, Mapping
 
 import numpy as np
 
@@ -35,11 +35,33 @@ class Parameter:
         dimensionless.
     description : str
         One line, for ``diskfield profiles`` and reports.
+    domain : tuple of float, optional
+        Half-open interval (low, high] of values the component's function accepts, in
+        ``unit`` (e.g. ``(0, inf)`` for a field strength, ``(-1, inf)`` for a ring amplitude,
+        ``(0, 1]`` for a fraction). A prior whose support leaves it is rejected when the prior
+        files are read.
+    closed_low : bool, optional
+        True if the lower end of ``domain`` is itself allowed (e.g. a scatter of 0).
+    default_prior : diskfield.priorspec.Prior or None, optional
+        Default prior for plug-ins that ship no prior file; the shipped profiles take theirs
+        from ``priors/disk.toml`` (a table there replaces this default).
     """
 
     name: str
     unit: str
     description: str
+    domain: tuple[float, float] = (-np.inf, np.inf)
+    closed_low: bool = False
+    default_prior: Any = None
+
+    def accepts(self, low: float, high: float) -> bool:
+        """True if the interval [low, high] (a prior's support) lies inside the domain.
+
+        An infinite support end is accepted where the domain is unbounded on that side.
+        """
+        lo, hi = self.domain
+        low_ok = lo < low or (low == lo and (self.closed_low or lo == -np.inf))
+        return bool(low_ok and high <= hi)
 
 
 @dataclass(frozen=True)
@@ -65,6 +87,11 @@ class RadialProfile:
     formula: str = ""
     kind: str = "radial"
 
+    @property
+    def parameter_names(self) -> tuple[str, ...]:
+        """Names of the declared parameters, in declaration order."""
+        return tuple(p.name for p in self.parameters)
+
 
 @dataclass(frozen=True)
 class Envelope:
@@ -76,6 +103,11 @@ class Envelope:
     log_factor: Callable[[np.ndarray, Mapping[str, np.ndarray]], np.ndarray]
     formula: str = ""
     kind: str = "envelope"
+
+    @property
+    def parameter_names(self) -> tuple[str, ...]:
+        """Names of the declared parameters, in declaration order."""
+        return tuple(p.name for p in self.parameters)
 
     @property
     def time_dependent(self) -> bool:
