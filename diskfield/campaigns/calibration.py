@@ -107,13 +107,15 @@ def sbc_task(problem, settings: SBCSettings, seed: np.random.SeedSequence) -> di
 def verdict_task(problem, generating_model: str, seed: np.random.SeedSequence) -> dict:
     """Simulate from ``generating_model`` and compute 2 ln B (alternative vs null).
 
-    ``problem`` has ``simulate_from(model_name, rng) -> (data, theta)`` and
+    ``problem`` has ``model_names`` (null, alternative),
+    ``simulate_from(model_name, rng) -> (data, {parameter: true value})`` and
     ``two_ln_bayes_factor(data, rng) -> (value, error)``.
     """
     rng = np.random.default_rng(seed)
     data, theta = problem.simulate_from(generating_model, rng)
     value, error = problem.two_ln_bayes_factor(data, rng)
-    return {"generating_model": generating_model, "truth": np.asarray(theta, dtype=float),
+    return {"generating_model": generating_model, "truth_names": list(theta),
+            "truth": [float(v) for v in theta.values()],
             "two_ln_bayes_factor": float(value), "two_ln_bayes_factor_err": float(error)}
 
 

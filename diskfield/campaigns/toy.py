@@ -59,10 +59,10 @@ class ConjugateGaussian:
         return draws, {"converged": True}
 
     def simulate_from(self, model_name: str, rng: np.random.Generator):
-        """Data and true parameters simulated from ``fixed_mean`` or ``free_mean`` (prior draw)."""
+        """Data and true parameters ({name: value}) from ``fixed_mean`` or ``free_mean``."""
         theta = (np.array([self.prior_mean]) if model_name == "fixed_mean"
                  else self.draw_truth(rng))
-        return self.simulate(theta, rng), theta
+        return self.simulate(theta, rng), {"mu": float(theta[0])}
 
     def two_ln_bayes_factor(self, data: np.ndarray, rng: np.random.Generator):
         """2 ln B of ``free_mean`` against ``fixed_mean`` (exact) and its error (0)."""
