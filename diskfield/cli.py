@@ -17,7 +17,7 @@ from .errors import DiskfieldError
 __all__ = ["main", "COMMANDS"]
 
 #: Command modules under ``diskfield.commands``, in the order ``--help`` lists them.
-COMMANDS = ("check", "ages")
+COMMANDS = ("check", "ages", "profiles")
 
 
 class _Parser(argparse.ArgumentParser):
