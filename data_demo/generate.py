@@ -35,8 +35,8 @@ import numpy as np
 from astropy import units as u
 from astropy.table import MaskedColumn, Table
 
-__all__ = ["COLUMNS", "FLAWS", "ring_field", "load_truth", "simulate_rows",
-           "build_table", "write_demo", "main"]
+__all__ = ["COLUMNS", "FLAWS", "ring_field", "load_truth", "simulate_rows", "build_table",
+           "write_csv", "write_flawed_csv", "write_flawed_ecsv", "write_demo", "main"]
 
 HERE = Path(__file__).resolve().parent
 
@@ -103,9 +103,12 @@ def load_truth(path=HERE / "truth.toml"):
     """
     with open(path, "rb") as fh:
         truth = tomllib.load(fh)
-    missing = [p for p in _RING_PARAMETERS + ("intrinsic_scatter",) if p not in truth["parameters"]]
-    missing += [f"bodies.{r['body']}" for r in truth["design"]["records"] if r["body"] not in truth["bodies"]]
-    missing += [f"labs.{b['lab']}" for b in truth["bodies"].values() if b["lab"] not in truth["labs"]]
+    names = _RING_PARAMETERS + ("intrinsic_scatter",)
+    missing = [p for p in names if p not in truth["parameters"]]
+    missing += [f"bodies.{r['body']}" for r in truth["design"]["records"]
+                if r["body"] not in truth["bodies"]]
+    missing += [f"labs.{b['lab']}" for b in truth["bodies"].values()
+                if b["lab"] not in truth["labs"]]
     if missing:
         raise ValueError(f"{path}: missing {', '.join(sorted(set(missing)))}")
     return truth
@@ -146,7 +149,8 @@ def _row(rec, truth, ln_measured):
     limit = truth["labs"][body["lab"]]["detection_limit"]
     detected = np.exp(ln_measured) >= limit
     value = round(float(np.exp(ln_measured) if detected else limit) * factor, 2)
-    age, window, fraction = rec.get("age", (None, None)), rec.get("window", (None, None)), rec.get("fraction", (None, None))
+    age, window = rec.get("age", (None, None)), rec.get("window", (None, None))
+    fraction = rec.get("fraction", (None, None))
     return {
         "record": rec["id"], "body": rec["body"], "reservoir": body["reservoir"],
         "kind": "estimate" if detected else "upper_limit", "paleointensity": value,
@@ -184,8 +188,9 @@ def simulate_rows(truth, seed):
     """
     rng = np.random.default_rng(seed)
     # Four normals per record, always drawn, so editing one record leaves the others' draws alone.
-    z = rng.standard_normal((len(truth["design"]["records"]), 4))
-    return [_row(rec, truth, _ln_measured(rec, truth, zi)) for rec, zi in zip(truth["design"]["records"], z)]
+    design = truth["design"]["records"]
+    z = rng.standard_normal((len(design), 4))
+    return [_row(rec, truth, _ln_measured(rec, truth, zi)) for rec, zi in zip(design, z)]
 
 
 def _column(name, values, unit):

@@ -85,6 +85,17 @@ def test_generator_field_agrees_with_ring_plugin(truth):
     np.testing.assert_allclose(ring.log_field(r, p), np.log(gen.ring_field(r, p)), rtol=1e-12)
 
 
+def test_truth_lies_inside_the_shipped_priors(truth):
+    # A demo fit can only recover a truth the shipped priors allow.
+    priorset = pytest.importorskip("diskfield.priorset")
+    priors = priorset.load_priors()
+    for name, value in truth["parameters"].items():
+        assert np.isfinite(priors.parameters[name].log_prob(np.array([value]))).all(), name
+    for name, body in truth["bodies"].items():
+        prior = priors.reservoirs[body["reservoir"]]
+        assert np.isfinite(prior.log_prob(np.array([body["distance"]]))).all(), name
+
+
 def test_ring_field_analytic_values(truth):
     p = truth["parameters"]
     # At the ring centre the Gaussian is 1; far from it the power law alone (derived).
