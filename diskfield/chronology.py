@@ -45,6 +45,7 @@ __all__ = [
     "age_from_ratio",
     "age_from_pbpb",
     "compute_age",
+    "resolve_start_age",
 ]
 
 #: Short-lived decay systems (ratio -> age).
@@ -429,8 +430,26 @@ def _real(option: str, value, *, positive: bool, what: str) -> float:
     raise OptionError(option, value, f"a finite number {bound} ({what})")
 
 
-def _start(constants: ChronometerConstants, start_age, start_age_err) -> Measured:
-    """The CAI start age [Ma]: the constants', or the override (keeping the file's error)."""
+def resolve_start_age(constants: ChronometerConstants, start_age: float | None = None,
+                      start_age_err: float | None = None) -> Measured:
+    """The CAI start age in use [Ma]: the constants', or an override.
+
+    Parameters
+    ----------
+    constants : ChronometerConstants
+    start_age, start_age_err : float, optional
+        Override of the value and of its 1-sigma [Ma]; a value given without an error keeps the
+        constants' error.
+
+    Returns
+    -------
+    Measured
+
+    Raises
+    ------
+    OptionError
+        A non-positive or non-finite start age, a negative or non-finite error.
+    """
     if start_age is None and start_age_err is None:
         return constants.start_age
     value = constants.start_age.value if start_age is None else _real(
@@ -581,7 +600,7 @@ def age_from_ratio(system: str, ratio: float, ratio_err: float, *, anchor: str |
     if anchor is None:
         return cai
     anc = _anchor(constants, anchor, name)
-    return _anchored(sys_, anc, _start(constants, start_age, start_age_err), ratio, ratio_err, cai)
+    return _anchored(sys_, anc, resolve_start_age(constants, start_age, start_age_err), ratio, ratio_err, cai)
 
 
 def age_from_pbpb(age_ma: float, err_ma: float, *, start_age: float | None = None,
@@ -607,7 +626,7 @@ def age_from_pbpb(age_ma: float, err_ma: float, *, start_age: float | None = Non
     """
     age_ma = _real("age_ma", age_ma, positive=True, what="absolute Pb-Pb age in Ma")
     err_ma = _real("err_ma", err_ma, positive=False, what="1-sigma in Ma")
-    start = _start(constants or load_constants(), start_age, start_age_err)
+    start = resolve_start_age(constants or load_constants(), start_age, start_age_err)
     age = start.value - age_ma
     warnings = []
     if age < 0:
