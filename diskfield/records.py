@@ -543,6 +543,10 @@ class _Cells:
         """Value in internal units; None when blank, NaN when invalid (reported)."""
         value = self.get(name)
         self.out[name] = math.nan
+        if name in self.columns and not self.usable(name):
+            # The column's unit was rejected: a filled cell is unusable, not blank, so no
+            # follow-on problems ("age_err given without age") are reported for it.
+            return None if self.raw[self.columns[name].position] is None else math.nan
         if value is None:
             if required and self.usable(name):
                 self.bad(name, None, "is blank; a number is required")
