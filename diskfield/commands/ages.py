@@ -10,11 +10,17 @@ Examples::
 """
 from __future__ import annotations
 
+import csv
+import io
 import json
+import re
 import sys
+from pathlib import Path
+
+import numpy as np
 
 from .. import chronology
-from ..errors import OptionError
+from ..errors import CompilationError, OptionError, Problem
 from ..sigfig import format_significant, round_with_uncertainty
 
 __all__ = ["NAME", "HELP", "add_arguments", "run"]
@@ -134,8 +140,6 @@ def _write_out(args, constants, payload) -> None:
     """With ``--out``: ``ages.json`` and ``manifest.json`` in that folder."""
     if not args.out:
         return
-    from pathlib import Path  # noqa: PLC0415
-
     from ..manifest import write_atomic, write_manifest  # noqa: PLC0415
     write_atomic(Path(args.out) / "ages.json", json.dumps(payload, indent=2) + "\n")
     write_manifest(args.out, prior_files=constants.files, seed=args.seed,
@@ -191,3 +195,224 @@ def _constants_text(c: chronology.ChronometerConstants) -> str:
         lines += [f"  {k} initial ratio: {_measured(m)}" for k, m in a.ratios.items()]
     lines.append("files read: " + ", ".join(c.files))
     return "\n".join(lines)
+
+
+# --------------------------------------------------------------------------- batch mode (--table)
+
+#: Input columns read by --table (others are carried through unchanged).
+_VALUE_COLUMNS = {"ratio": ("ratio", "ratio_err"), "pbpb": ("pbpb_age", "pbpb_err")}
+#: Output columns appended by --table, with units.
+_OUTPUT_COLUMNS = {"age": "Myr", "age_err": "Myr", "age_err_shared": "Myr",
+                   "age_err_sample": "Myr", "age_basis": "", "age_cai_relative": "Myr",
+                   "age_cai_relative_err": "Myr", "age_warnings": ""}
+#: API argument names -> table columns.
+_TABLE_NAMES = {"system": "system", "ratio": "ratio", "ratio_err": "ratio_err",
+                "age_ma": "pbpb_age", "err_ma": "pbpb_err", "anchor": "anchor"}
+_HEADER = re.compile(r"^\s*([^\[\]]*?)\s*(?:\[([^\]]*)\])?\s*$")
+
+
+def _run_table(args, constants) -> int:
+    """Batch mode: one age per row of ``--table``; all problems reported together."""
+    path = Path(args.table)
+    _with_cli_names(chronology.resolve_start_age, constants, args.start_age, args.start_age_err)
+    start = {"start_age": args.start_age, "start_age_err": args.start_age_err}
+    names, units, rows = _read_table(path)
+    results = _table_results(path, names, units, rows, constants, start)
+    table_rows = [{**row, **_output_values(r)} for row, r in zip(rows, results)]
+    if args.format == "json":
+        _emit(args, [{"row": i, **row, "result": r.as_dict()}
+                     for i, (row, r) in enumerate(zip(rows, results), 1)], "")
+    target = _table_target(args, path)
+    text = _write_table(target, path, names, units, table_rows)
+    if args.format == "text":
+        sys.stdout.write(text if target is None else f"wrote {len(rows)} ages to {target}\n")
+    if target is not None:
+        _write_manifest_for(args, constants, path)
+    return 0
+
+
+def _table_target(args, path: Path) -> Path | None:
+    if not args.out:
+        return None
+    return Path(args.out) / ("ages.ecsv" if path.suffix.lower() == ".ecsv" else "ages.csv")
+
+
+def _write_manifest_for(args, constants, path: Path) -> None:
+    from ..manifest import sha256_file, write_manifest  # noqa: PLC0415
+    write_manifest(args.out, data_hash=sha256_file(path), prior_files=constants.files,
+                   seed=args.seed, extra={"command": NAME})
+
+
+def _output_values(r: chronology.AgeResult) -> dict:
+    cai = r.cai_relative
+    return {"age": r.age_myr, "age_err": r.err_myr, "age_err_shared": r.shared_err_myr,
+            "age_err_sample": r.sample_err_myr, "age_basis": r.basis,
+            "age_cai_relative": cai.age_myr if cai else r.age_myr,
+            "age_cai_relative_err": cai.err_myr if cai else r.err_myr,
+            "age_warnings": "; ".join(r.warnings)}
+
+
+def _read_table(path: Path) -> tuple[list[str], dict, list[dict]]:
+    """Column names, units (name -> unit string) and rows (name -> raw value or None)."""
+    if path.suffix.lower() == ".ecsv":
+        return _read_ecsv(path)
+    try:
+        with open(path, newline="", encoding="utf-8") as fh:
+            lines = list(csv.reader(fh))
+    except FileNotFoundError:
+        raise CompilationError(Problem(str(path), "file not found")) from None
+    except (OSError, UnicodeDecodeError, csv.Error) as err:
+        raise CompilationError(Problem(str(path), f"cannot read as CSV: {err}")) from None
+    lines = [ln for ln in lines if any(cell.strip() for cell in ln)]
+    if not lines:
+        raise CompilationError(Problem(str(path), "empty file; need a header row with "
+                                       "system, ratio, ratio_err (or pbpb_age, pbpb_err)"))
+    names, units = _parse_header(path, lines[0])
+    rows = []
+    for i, cells in enumerate(lines[1:], 1):
+        if len(cells) != len(names):
+            raise CompilationError(Problem(str(path), f"has {len(cells)} cells; the header has "
+                                           f"{len(names)}", row=i))
+        rows.append({n: (c.strip() or None) for n, c in zip(names, cells)})
+    return names, units, rows
+
+
+def _parse_header(path: Path, header: list[str]) -> tuple[list[str], dict]:
+    names, units = [], {}
+    for cell in header:
+        name, unit = _HEADER.match(cell).groups()
+        if not name or name in names:
+            why = "empty column name" if not name else f"duplicate column {name!r}"
+            raise CompilationError(Problem(str(path), f"header: {why}"))
+        names.append(name)
+        units[name] = (unit or "").strip()
+    return names, units
+
+
+def _read_ecsv(path: Path) -> tuple[list[str], dict, list[dict]]:
+    from astropy.table import Table  # noqa: PLC0415 - only for ECSV input
+    try:
+        table = Table.read(path, format="ascii.ecsv")
+    except FileNotFoundError:
+        raise CompilationError(Problem(str(path), "file not found")) from None
+    except Exception as err:  # astropy raises many types for a malformed file
+        raise CompilationError(Problem(str(path), f"cannot read as ECSV: {err}")) from None
+    names = list(table.colnames)
+    units = {n: str(table[n].unit or "") for n in names}
+    rows = [{n: (None if np.ma.is_masked(row[n]) else row[n].item() if hasattr(row[n], "item")
+                 else row[n]) for n in names} for row in table]
+    return names, units, rows
+
+
+def _table_results(path, names, units, rows, constants, start) -> list:
+    """Compute every row's age, or raise CompilationError listing every problem."""
+    problems = _column_problems(path, names, units)
+    if not rows:
+        problems.append(Problem(str(path), "no data rows"))
+    if problems:
+        raise CompilationError(problems)
+    scale = {c: _time_scale(units[c]) for c in _VALUE_COLUMNS["pbpb"] if c in units}
+    results = []
+    for i, row in enumerate(rows, 1):
+        try:
+            results.append(_row_age(path, i, row, scale, constants, start))
+        except CompilationError as err:
+            problems += err.problems
+    if problems:
+        raise CompilationError(problems)
+    return results
+
+
+def _column_problems(path, names, units) -> list[Problem]:
+    problems = []
+    if "system" not in names:
+        problems.append(Problem(str(path), "missing; required columns: system, and ratio, "
+                                "ratio_err (decay systems) or pbpb_age, pbpb_err (Pb-Pb, Ma)",
+                                column="system"))
+    for name in set(names) & set(_OUTPUT_COLUMNS):
+        problems.append(Problem(str(path), "is an output column of diskfield ages; rename it",
+                                column=name))
+    for name in _VALUE_COLUMNS["ratio"]:
+        if units.get(name) and units[name] not in ("", "dimensionless", "1"):
+            problems.append(Problem(str(path), f"got unit {units[name]!r}; a ratio has none",
+                                    column=name))
+    for name in _VALUE_COLUMNS["pbpb"]:
+        if units.get(name) and _time_scale(units[name]) is None:
+            problems.append(Problem(str(path), f"got unit {units[name]!r}; must be a time unit "
+                                    "such as Ma or Gyr", column=name))
+    return problems
+
+
+def _time_scale(unit: str) -> float | None:
+    """Factor from ``unit`` to Ma (None when not a time unit); no unit means Ma."""
+    if not unit:
+        return 1.0
+    import astropy.units as u  # noqa: PLC0415
+    try:
+        return float(u.Unit(unit).to(u.Myr))
+    except (ValueError, TypeError, u.UnitsError):
+        return None
+
+
+def _row_age(path, i, row, scale, constants, start) -> chronology.AgeResult:
+    """One row's age; a CompilationError naming the row and column on bad input."""
+    sample = row.get("sample")
+    where = dict(row=i, record=None if sample is None else str(sample))
+    system = row.get("system")
+    kind = "pbpb" if str(system).strip().lower() == "pb-pb" else "ratio"
+    unused = _VALUE_COLUMNS["ratio" if kind == "pbpb" else "pbpb"]
+    problems = [Problem(str(path), f"got {row[c]!r}; not used on a {system} row: leave it empty",
+                        column=c, **where) for c in unused if row.get(c) is not None]
+    value, err = (_cell_number(path, row, c, scale.get(c, 1.0), where, problems)
+                  for c in _VALUE_COLUMNS[kind])
+    if problems:
+        raise CompilationError(problems)
+    try:
+        return chronology.compute_age(system, value, err, anchor=row.get("anchor") or None,
+                                      constants=constants, **start)
+    except OptionError as bad:
+        column = _TABLE_NAMES.get(bad.option, bad.option)
+        raise CompilationError(Problem(str(path), f"got {bad.got!r}; valid: {bad.valid}",
+                                       column=column, **where)) from None
+
+
+def _cell_number(path, row, column, factor, where, problems) -> float | None:
+    raw = row.get(column)
+    try:
+        if raw is None:
+            raise ValueError("empty")
+        return float(raw) * factor
+    except (TypeError, ValueError):
+        got = "an empty cell" if raw is None else repr(raw)
+        problems.append(Problem(str(path), f"got {got}; must be a number (give 0 for no error)"
+                                if column.endswith("err") else f"got {got}; must be a number",
+                                column=column, **where))
+        return None
+
+
+def _write_table(target, source: Path, names, units, rows) -> str:
+    """Write the table (ECSV when the input was ECSV, else CSV with ``name [unit]`` headers).
+
+    Returns the CSV text when ``target`` is None (printed by the caller), else ``""``.
+    """
+    all_units = {**units, **_OUTPUT_COLUMNS}
+    columns = names + list(_OUTPUT_COLUMNS)
+    if target is not None and target.suffix == ".ecsv":
+        from astropy.table import Table  # noqa: PLC0415
+
+        from ..manifest import atomic_path  # noqa: PLC0415
+        table = Table(rows=[[r[c] for c in columns] for r in rows], names=columns, masked=True)
+        for c in columns:
+            table[c].unit = all_units.get(c) or None
+        with atomic_path(target) as tmp:
+            table.write(tmp, format="ascii.ecsv", overwrite=True)
+        return ""
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow([f"{c} [{all_units[c]}]" if all_units.get(c) else c for c in columns])
+    writer.writerows([["" if r[c] is None else r[c] for c in columns] for r in rows])
+    if target is None:
+        return buffer.getvalue()
+    from ..manifest import write_atomic  # noqa: PLC0415
+    write_atomic(target, buffer.getvalue())
+    return ""
