@@ -395,3 +395,91 @@ def test_cli_bad_input_is_one_line_and_exit_2(run_cli, argv, fragment):
     assert status == 2 and out == ""
     lines = err.strip().splitlines()
     assert len(lines) == 1 and fragment in lines[0] and "Traceback" not in err
+
+
+# --------------------------------------------------------------------------- batch mode
+
+_TABLE = """sample,system,ratio,ratio_err,pbpb_age [Ma],pbpb_err [Ma],anchor,note
+S1,Al-Mg,3.98e-7,0.15e-7,,,,"kept, with a comma"
+S2,Mn-Cr,3.24e-6,0.04e-6,,,dorbigny,
+S3,Pb-Pb,,,4563.37,0.25,,
+"""
+
+
+def _read_csv_output(text):
+    import csv
+    import io
+    return list(csv.DictReader(io.StringIO(text)))
+
+
+def test_cli_table_csv_to_stdout(run_cli, tmp_path):
+    path = _write(tmp_path, _TABLE, "samples.csv")
+    status, out, err = run_cli("--table", str(path))
+    assert status == 0 and err == ""
+    rows = _read_csv_output(out)
+    assert [r["sample"] for r in rows] == ["S1", "S2", "S3"]
+    assert rows[0]["note"] == "kept, with a comma"
+    # same published arithmetic as above (Jacobsen 2008; Schiller 2015; Connelly 2012)
+    assert float(rows[0]["age [Myr]"]) == pytest.approx(0.717 / LN2 * math.log(AL_CAI / DOR_AL))
+    assert float(rows[1]["age [Myr]"]) == pytest.approx(T_CAI - DOR_PB, abs=1e-9)
+    assert float(rows[2]["age [Myr]"]) == pytest.approx(T_CAI - DOR_PB, abs=1e-9)
+    assert float(rows[2]["age_err [Myr]"]) == pytest.approx(math.hypot(T_CAI_ERR, DOR_PB_ERR))
+
+
+def test_cli_table_ecsv_with_units_to_out_folder(run_cli, tmp_path):
+    import astropy.units as u
+    from astropy.table import Table
+    table = Table({"sample": ["E1"], "system": ["Pb-Pb"], "pbpb_age": [4.56337] * u.Gyr,
+                   "pbpb_err": [0.00025] * u.Gyr})
+    path = tmp_path / "samples.ecsv"
+    table.write(path)
+    out_dir = tmp_path / "out"
+    status, out, _ = run_cli("--table", str(path), "--out", str(out_dir))
+    assert status == 0 and "wrote 1 ages" in out
+    result = Table.read(out_dir / "ages.ecsv")
+    assert result["age"].unit == u.Myr
+    assert result["age"][0] == pytest.approx(T_CAI - DOR_PB, abs=1e-6)   # Gyr converted to Ma
+    assert (out_dir / "manifest.json").is_file()
+
+
+def test_cli_table_reports_every_bad_row(run_cli, tmp_path):
+    path = _write(tmp_path, """sample,system,ratio,ratio_err,pbpb_age,pbpb_err
+B1,Al-Mg,abc,1e-8,,
+B2,Xe-I,2e-6,1e-7,,
+B3,Pb-Pb,1e-6,0,4563.37,0.2
+B4,Mn-Cr,2e-6,,,
+""", "bad.csv")
+    status, out, err = run_cli("--table", str(path))
+    assert status == 2 and out == ""
+    lines = err.strip().splitlines()
+    assert len(lines) == 5
+    expected = [("row 1, record 'B1', column 'ratio'", "got 'abc'"),
+                ("row 2, record 'B2', column 'system'", "Al-Mg, Mn-Cr, Hf-W, Pb-Pb"),
+                ("row 3, record 'B3', column 'ratio'", "leave it empty"),
+                ("row 3, record 'B3', column 'ratio_err'", "leave it empty"),
+                ("row 4, record 'B4', column 'ratio_err'", "give 0 for no error")]
+    for line, (place, fragment) in zip(lines, expected):
+        assert str(path) in line and place in line and fragment in line
+
+
+@pytest.mark.parametrize("text, fragment", [
+    ("", "empty file"),
+    ("system,ratio,ratio_err\n", "no data rows"),
+    ("system,ratio,ratio_err\nAl-Mg,1e-6\n", "row 1: has 2 cells"),
+    ("ratio,ratio_err\n1e-6,0\n", "column 'system': missing"),
+    ("system,ratio,ratio_err,age\nAl-Mg,1e-6,0,1\n", "column 'age': is an output column"),
+    ("system,ratio [uT],ratio_err\nAl-Mg,1e-6,0\n", "a ratio has none"),
+    ("system,pbpb_age [uT],pbpb_err\nPb-Pb,4563,0.2\n", "must be a time unit"),
+    ("system,ratio,ratio,ratio_err\nAl-Mg,1,1,0\n", "duplicate column 'ratio'"),
+])
+def test_cli_table_bad_files(run_cli, tmp_path, text, fragment):
+    path = _write(tmp_path, text, "t.csv")
+    status, out, err = run_cli("--table", str(path))
+    assert status == 2 and out == "" and fragment in err and "Traceback" not in err
+
+
+def test_cli_table_garbage_bytes(run_cli, tmp_path):
+    path = tmp_path / "garbage.csv"
+    path.write_bytes(bytes(range(256)) * 3)
+    status, _, err = run_cli("--table", str(path))
+    assert status == 2 and str(path) in err and len(err.strip().splitlines()) == 1
