@@ -1,0 +1,88 @@
+"""Marginal and pair plots of posterior draws (a compact corner-style plot of our own)."""
+from __future__ import annotations
+
+import numpy as np
+
+from ..plotstyle import OKABE_ITO, new_figure, style
+
+__all__ = ["RING_PARAMETERS", "pair_figure"]
+
+#: The ring parameters shown by default, with axis labels and units.
+RING_PARAMETERS = {
+    "ring_radius": "r0, ring radius (AU)",
+    "ring_amplitude": "A (dimensionless)",
+    "ring_width": "w, ring width (AU)",
+    "ring2_radius": "r0 of ring 2 (AU)",
+    "ring2_amplitude": "A of ring 2 (dimensionless)",
+    "ring2_width": "w of ring 2 (AU)",
+}
+
+
+def _limits(x: np.ndarray) -> tuple[float, float]:
+    lo, hi = np.percentile(x, [0.5, 99.5])
+    pad = 0.05 * (hi - lo) if hi > lo else 0.5 * max(abs(lo), 1.0)
+    return float(lo - pad), float(hi + pad)
+
+
+def _diagonal(ax, x, lim, bins) -> None:
+    ax.hist(x, bins=bins, range=lim, histtype="stepfilled", color=OKABE_ITO[1], alpha=0.35)
+    ax.hist(x, bins=bins, range=lim, histtype="step", color=OKABE_ITO[1], lw=0.9)
+    for q, ls in zip(np.percentile(x, [16, 50, 84]), (":", "-", ":")):
+        ax.axvline(q, color="0.2", ls=ls, lw=0.7)
+    ax.set_yticks([])
+    ax.set_xlim(lim)
+
+
+def _off_diagonal(ax, x, y, xlim, ylim, bins) -> None:
+    h, xe, ye = np.histogram2d(x, y, bins=bins, range=[xlim, ylim])
+    ax.pcolormesh(xe, ye, h.T, cmap="Greys", shading="flat", rasterized=True)
+    ax.set(xlim=xlim, ylim=ylim)
+
+
+def pair_figure(samples: dict[str, np.ndarray], labels: dict[str, str] | None = None, *,
+                bins: int = 30, width_in: float = 5.0):
+    """Corner-style plot: marginal histograms on the diagonal, 2-D histograms below.
+
+    Parameters
+    ----------
+    samples : dict of str -> ndarray
+        Parameter name -> posterior draws (any shape; flattened).
+    labels : dict of str -> str, optional
+        Axis label with unit per parameter (default :data:`RING_PARAMETERS`, else the name).
+    bins : int
+        Histogram bins per axis.
+    width_in : float
+        Figure width and height [inch].
+
+    Returns
+    -------
+    Figure
+        The diagonal marks the median (solid) and 16th/84th percentiles (dotted).
+    """
+    labels = {**RING_PARAMETERS, **(labels or {})}
+    names = list(samples)
+    data = [np.ravel(np.asarray(samples[n], float)) for n in names]
+    lims = [_limits(x) for x in data]
+    n = len(names)
+    with style():
+        fig, axes = new_figure(width_in, width_in, nrows=n, ncols=n, squeeze=False)
+        for i in range(n):
+            for j in range(n):
+                ax = axes[i, j]
+                if j > i:
+                    ax.set_visible(False)
+                elif i == j:
+                    _diagonal(ax, data[i], lims[i], bins)
+                else:
+                    _off_diagonal(ax, data[j], data[i], lims[j], lims[i], bins)
+                if i == n - 1:
+                    ax.set_xlabel(labels.get(names[j], names[j]))
+                else:
+                    ax.tick_params(labelbottom=False)
+                if j == 0 and i > 0:
+                    ax.set_ylabel(labels.get(names[i], names[i]))
+                elif j > 0 or i == 0:
+                    ax.tick_params(labelleft=False)
+        if n == 1:
+            axes[0, 0].set_ylabel("Posterior density (arbitrary units)")
+    return fig
