@@ -476,3 +476,156 @@ def test_writer_rejects_unknown_format(tmp_path, small_compilation):
 
     with pytest.raises(OptionError, match="ecsv or csv"):
         write_compilation(small_compilation, tmp_path / "c.xlsx")
+
+
+# --------------------------------------------------------------------------- property-based
+
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+from diskfield.records import KINDS  # noqa: E402
+
+PROPERTY_SETTINGS = settings(max_examples=60, deadline=None,
+                             suppress_health_check=[HealthCheck.function_scoped_fixture])
+_positive = st.floats(1e-3, 1e4, allow_nan=False, allow_infinity=False)
+
+
+@st.composite
+def valid_rows(draw) -> list[dict]:
+    """A valid invented table of 1-10 rows over 1-4 bodies, at least one row included."""
+    bodies = [(f"Body{i}", draw(st.sampled_from(RESERVOIRS)))
+              for i in range(draw(st.integers(1, 4)))]
+    rows = [_valid_row(draw, i, *draw(st.sampled_from(bodies)))
+            for i in range(draw(st.integers(1, 10)))]
+    rows[draw(st.integers(0, len(rows) - 1))]["include"] = "true"
+    return rows
+
+
+def _valid_row(draw, i, body, reservoir) -> dict:
+    kind = draw(st.sampled_from(KINDS))
+    row = {"record": f"R-{i}", "body": body, "kind": draw(st.sampled_from([kind, kind.upper()])),
+           "reservoir": draw(st.sampled_from([reservoir, reservoir.lower()])),
+           "paleointensity": repr(draw(_positive)),
+           "spin_factor_applied": draw(st.sampled_from(["", "2", "1.5"])),
+           "include": draw(st.sampled_from(["true", "false", "yes", "no", "1", "0", ""]))}
+    if kind == "estimate" or draw(st.booleans()):
+        row["paleointensity_err"] = repr(draw(_positive))
+    age = draw(st.sampled_from(["none", "normal", "uniform"]))
+    if age == "normal":
+        row.update(age=repr(draw(st.floats(0, 10))), age_err=repr(draw(st.floats(0.01, 3))))
+    elif age == "uniform":
+        low = draw(st.floats(0, 8))
+        row.update(age_min=repr(low), age_max=repr(low + draw(st.floats(0.01, 3))))
+    return row
+
+
+def _included(row) -> bool:
+    return row.get("include", "") in ("true", "yes", "1", "")
+
+
+@PROPERTY_SETTINGS
+@given(rows=valid_rows(), fmt=st.sampled_from(["csv", "ecsv"]))
+def test_property_valid_tables_keep_every_row(tmp_path_factory, rows, fmt):
+    path = write_rows(tmp_path_factory.mktemp("valid") / "c.csv", rows)
+    comp = read(path)
+    if fmt == "ecsv":
+        comp = read(write_compilation(comp, path.with_suffix(".ecsv")))
+    assert len(comp.records) + len(comp.excluded) == len(rows) == len(comp.table)
+    kept = [r for r in rows if _included(r)]
+    assert comp.records.record.tolist() == [r["record"] for r in kept]
+    expected = [math.log(float(r["paleointensity"]) / float(r["spin_factor_applied"] or 1))
+                for r in kept]
+    np.testing.assert_allclose(comp.records.ln_value, expected, rtol=1e-12)
+    assert comp.body_names == tuple(dict.fromkeys(r["body"] for r in kept))
+
+
+def _drop_column(draw, rows):
+    column = draw(st.sampled_from(REQUIRED_COLUMNS))
+    for row in rows:
+        row.pop(column, None)
+    columns = [c for c in COLUMNS if c != column and any(c in r for r in rows)]
+    return rows, {"columns": columns}, (None, column, "missing")
+
+
+def _rename_column(draw, rows):
+    column = draw(st.sampled_from(REQUIRED_COLUMNS))
+    typo = draw(st.sampled_from([column[:-1], column + "s", column.replace("e", "a", 1) + "_"]))
+    for row in rows:
+        row[typo] = row.pop(column)
+    columns = [typo if c == column else c for c in COLUMNS if any(c in r for r in rows)
+               or c == column]
+    return rows, {"columns": columns, "units": dict(UNITS, **{typo: UNITS.get(column, "")})}, \
+        (None, column, "missing")
+
+
+def _wrong_unit(draw, rows):
+    unit = draw(st.sampled_from(["", "m", "Myr", "AU", "kg", "s", "K", "bogus_unit", "uT/s"]))
+    return rows, {"units": dict(UNITS, paleointensity=unit)}, (None, "paleointensity", "")
+
+
+def _bad_value(draw, rows):
+    i = draw(st.integers(0, len(rows) - 1))
+    bad = draw(st.one_of(st.sampled_from(["-1", "0", "nan", "inf", "-inf", "abc", "", "1e999"]),
+                         st.floats(max_value=0).map(repr)))
+    rows[i].update(paleointensity=bad, include="true")
+    return rows, {}, (i + 1, "paleointensity", "")
+
+
+def _duplicate_id(draw, rows):
+    rows.append(dict(rows[draw(st.integers(0, len(rows) - 1))]))
+    return rows, {}, (len(rows), "record", "duplicate")
+
+
+def _unknown_word(draw, rows, column, valid):
+    i = draw(st.integers(0, len(rows) - 1))
+    word = draw(st.text("abcdefgxyzXYZ_-", min_size=1, max_size=8).filter(
+        lambda w: w.strip("_-") and w.lower().replace("-", "_") not in
+        [v.lower() for v in valid]))
+    rows[i].update({column: word, "include": "true"})
+    return rows, {}, (i + 1, column, "valid")
+
+
+def _contradictory_override(draw, rows):
+    rows.append(dict(rows[0], record="EXTRA-1", include="true", distance_min="1",
+                     distance_max="2", paleointensity_err="1"))
+    rows.append(dict(rows[-1], record="EXTRA-2", distance_max=draw(st.sampled_from(["3", "2.5"]))))
+    rows[0].pop("distance_min", None)
+    return rows, {}, (len(rows), "distance_min", "one distance override")
+
+
+MUTATIONS = {
+    "drop_column": _drop_column,
+    "rename_column": _rename_column,
+    "wrong_unit": _wrong_unit,
+    "bad_value": _bad_value,
+    "duplicate_id": _duplicate_id,
+    "unknown_reservoir": lambda d, r: _unknown_word(d, r, "reservoir", RESERVOIRS),
+    "unknown_kind": lambda d, r: _unknown_word(d, r, "kind", KINDS),
+    "contradictory_override": _contradictory_override,
+}
+
+
+@PROPERTY_SETTINGS
+@given(rows=valid_rows(), mutation=st.sampled_from(sorted(MUTATIONS)), data=st.data())
+def test_property_malformed_tables_are_located(tmp_path_factory, rows, mutation, data):
+    rows, write_kw, (row, column, fragment) = MUTATIONS[mutation](data.draw, rows)
+    path = write_rows(tmp_path_factory.mktemp("bad") / "c.csv", rows, **write_kw)
+    problems = problems_of(path)
+    hits = find(problems, column=column)
+    hits = [p for p in hits if p.row == row and fragment in p.message]
+    assert hits, (mutation, [str(p) for p in problems])
+    assert all(p.source == str(path) for p in problems)
+    if row is not None:
+        assert hits[0].line == row + 1  # one header line, one line per row
+
+
+@PROPERTY_SETTINGS
+@given(content=st.one_of(st.binary(max_size=600), st.text(max_size=600).map(str.encode)),
+       suffix=st.sampled_from([".csv", ".ecsv"]),
+       prefix=st.sampled_from([b"", b"# %ECSV 1.0\n# ---\n",
+                               b"record,body,reservoir,kind,paleointensity [uT]\n"]))
+def test_property_garbage_is_a_compilation_error(tmp_path_factory, content, suffix, prefix):
+    path = tmp_path_factory.mktemp("garbage") / f"g{suffix}"
+    path.write_bytes(prefix + content)
+    problems = problems_of(path)
+    assert problems and all(p.source == str(path) and p.message for p in problems)
