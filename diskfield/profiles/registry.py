@@ -46,21 +46,41 @@ def _load_entry_point(ep):
             obj = obj()
     except Exception as exc:  # a broken third-party plug-in must not break diskfield
         warnings.warn(f"diskfield plug-in {ep.name!r} ({ep.value}) failed to load and is "
-                      f"skipped: {type(exc).__name__}: {exc}", stacklevel=3)
+                      f"skipped: {type(exc).__name__}: {exc}", stacklevel=4)
         return None
     if not isinstance(obj, (RadialProfile, Envelope)):
         warnings.warn(f"diskfield plug-in {ep.name!r} ({ep.value}) is skipped: it gave "
-                      f"{type(obj).__name__}, not a RadialProfile or Envelope", stacklevel=3)
+                      f"{type(obj).__name__}, not a RadialProfile or Envelope", stacklevel=4)
         return None
     return obj
 
 
+# Each entry point is loaded once per process (keyed by name and target), so a broken
+# plug-in warns once; _LOADING stops a plug-in that calls get_profile while it is being
+# loaded (to reuse a built-in parameter) from recursing into the plug-in list.
+_LOADED: dict[tuple[str, str], object] = {}
+_LOADING: list[bool] = []
+
+
+def _load_cached(ep):
+    key = (ep.name, ep.value)
+    if key not in _LOADED:
+        _LOADING.append(True)
+        try:
+            _LOADED[key] = _load_entry_point(ep)
+        finally:
+            _LOADING.pop()
+    return _LOADED[key]
+
+
 def _plugins() -> list:
-    """Components from the entry-point group, in entry-point order (read on every call)."""
+    """Components from the entry-point group, in entry-point order."""
+    if _LOADING:
+        return []
     builtin = {c.name for c in _BUILTIN_PROFILES + _BUILTIN_ENVELOPES}
     found = []
     for ep in metadata.entry_points(group=ENTRY_POINT_GROUP):
-        obj = _load_entry_point(ep)
+        obj = _load_cached(ep)
         if obj is None:
             continue
         if obj.name in builtin:
