@@ -488,12 +488,12 @@ def _result(system, reference, age, components, inputs, constants, warnings, cai
 
 
 def _ratio_warnings(sys_: DecaySystem, ratio: float, ratio_err: float, age: float,
-                    reference: str) -> list[str]:
+                    scale: str) -> list[str]:
     warnings = []
     if age < 0:
-        warnings.append(f"negative age: the {sys_.ratio_label} ratio {ratio:.4g} is above the "
-                        f"{reference} value, i.e. before CAI formation; check the ratio, the "
-                        "constants, or an isotopic heterogeneity")
+        warnings.append(f"negative age: the {sys_.ratio_label} ratio {ratio:.4g} implies "
+                        f"formation before the CAIs ({scale}); check the ratio, the constants, "
+                        "or an isotopic heterogeneity")
     if age > _EXTINCT_HALF_LIVES * sys_.half_life.value:
         warnings.append(f"age beyond {_EXTINCT_HALF_LIVES:g} half-lives of {sys_.name}: the "
                         "system is effectively extinct and the ratio is likely an upper limit")
@@ -512,7 +512,7 @@ def _cai_relative(sys_: DecaySystem, ratio: float, ratio_err: float) -> AgeResul
     return _result(sys_.name, "cai_ratio", age, components,
                    {"ratio": ratio, "ratio_err": ratio_err},
                    {"half_life_myr": sys_.half_life, "cai_ratio": r0},
-                   _ratio_warnings(sys_, ratio, ratio_err, age, "CAI initial"))
+                   _ratio_warnings(sys_, ratio, ratio_err, age, _BASIS["cai_ratio"]))
 
 
 def _anchor_offset(sys_: DecaySystem, anc: Anchor, start: Measured) -> tuple[float, float]:
@@ -533,7 +533,7 @@ def _anchored(sys_: DecaySystem, anc: Anchor, start: Measured, ratio: float, rat
     components = {"sample_ratio": tau * ratio_err / ratio, "anchor_ratio": tau * ra.err / ra.value,
                   "half_life": abs(decay) * sys_.tau_rel_err, "anchor_pbpb": anc.pbpb_age.err,
                   "start_age": start.err}
-    warnings = _ratio_warnings(sys_, ratio, ratio_err, age, f"{anc.label}-anchored")
+    warnings = _ratio_warnings(sys_, ratio, ratio_err, age, f"anchored to {anc.label}")
     offset, offset_err = _anchor_offset(sys_, anc, start)
     if abs(offset) > 2 * offset_err:
         warnings.append(f"{anc.label}: its Pb-Pb age after CAIs and its {sys_.name} age relative "

@@ -388,6 +388,7 @@ def test_cli_list_constants_and_user_file(run_cli, tmp_path):
     (["--pbpb-age", "4563"], "'--pbpb-err'"),
     (["--pbpb-age", "4563", "--pbpb-err", "0.2", "--start-age-err", "-1"], "'--start-age-err'"),
     ([], "'--system'"),
+    (["--table", "samples.csv", "--ratio", "1e-6"], "not used with --table"),
     (["--list-constants", "--constants", "/nonexistent/c.toml"], "file not found"),
 ])
 def test_cli_bad_input_is_one_line_and_exit_2(run_cli, argv, fragment):

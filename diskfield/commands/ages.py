@@ -76,6 +76,8 @@ def run(args) -> int:
         _emit(args, constants.as_dict(), _constants_text(constants))
         return 0
     if args.table:
+        _with_cli_names(_refuse, args, ("system", "ratio", "ratio_err", "anchor", "pbpb_age",
+                                        "pbpb_err"), "with --table (the table gives them)")
         return _run_table(args, constants)
     result = _with_cli_names(_single, args, constants)
     _emit(args, result.as_dict(), _result_text(result))
