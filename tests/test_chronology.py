@@ -386,6 +386,8 @@ def test_cli_list_constants_and_user_file(run_cli, tmp_path):
     (["--system", "Al-Mg", "--ratio", "1e-6", "--ratio-err", "0", "--anchor", "x"], "dorbigny"),
     (["--pbpb-age", "4563", "--pbpb-err", "0.2", "--ratio", "1e-6"], "'--ratio'"),
     (["--pbpb-age", "4563"], "'--pbpb-err'"),
+    (["--pbpb-age", "4563", "--pbpb-err", "0.2", "--system", "Al-Mg"], "Pb-Pb (or omit it)"),
+    (["--system", "Pb-Pb", "--ratio", "1e-6", "--ratio-err", "0"], "'--ratio'"),
     (["--pbpb-age", "4563", "--pbpb-err", "0.2", "--start-age-err", "-1"], "'--start-age-err'"),
     ([], "'--system'"),
     (["--table", "samples.csv", "--ratio", "1e-6"], "not used with --table"),

@@ -99,7 +99,10 @@ def _single(args, constants) -> chronology.AgeResult:
     """One age from the options given (a ratio or a Pb-Pb age)."""
     start = {"start_age": args.start_age, "start_age_err": args.start_age_err,
              "constants": constants}
-    if args.pbpb_age is not None or (args.system and args.system.lower() == "pb-pb"):
+    is_pbpb = args.system is not None and args.system.replace("\u2013", "-").lower() == "pb-pb"
+    if args.pbpb_age is not None or is_pbpb:
+        if args.system is not None and not is_pbpb:
+            raise OptionError("--system", args.system, "Pb-Pb (or omit it) with --pbpb-age")
         _refuse(args, ("ratio", "ratio_err", "anchor"), "with a Pb-Pb age")
         _require(args, ("pbpb_age", "pbpb_err"), "for a Pb-Pb age")
         return chronology.age_from_pbpb(args.pbpb_age, args.pbpb_err, **start)
