@@ -283,8 +283,10 @@ def _parse_csv(text: str, collector: _Collector) -> _Raw:
     headers, rows = None, []
     try:
         for cells in reader:
-            if not any(c.strip() for c in cells) or cells[0].lstrip().startswith("#"):
-                continue  # blank and comment lines carry no data
+            if not any(c.strip() for c in cells):
+                continue  # blank lines carry no data
+            if headers is None and cells[0].lstrip().startswith("#"):
+                continue  # comments only above the header: a '#' row below it is data
             if headers is None:
                 headers = [_split_header(c, collector, i + 1) for i, c in enumerate(cells)]
                 continue
@@ -532,6 +534,8 @@ class _Cells:
             self.out[name] = True
             return True
         word = str(value).strip().lower()
+        if isinstance(value, float) and value in (0.0, 1.0):
+            word = str(int(value))
         if word in _TRUE or word in _FALSE:
             self.out[name] = word in _TRUE
             return word in _TRUE

@@ -629,3 +629,10 @@ def test_property_garbage_is_a_compilation_error(tmp_path_factory, content, suff
     path.write_bytes(prefix + content)
     problems = problems_of(path)
     assert problems and all(p.source == str(path) and p.message for p in problems)
+
+
+def test_hash_row_below_header_is_data_not_a_comment(tmp_path):
+    rows = base_rows()
+    rows[2]["record"] = "# B-1"
+    comp = read(write_rows(tmp_path / "c.csv", rows))
+    assert "# B-1" in comp.records.record.tolist() and len(comp.table) == 4
