@@ -216,9 +216,10 @@ def _effective_support(prior: Prior) -> tuple[float, float]:
 def _check_support(prior: Prior, rule: _Rule, where: str, problem) -> None:
     low, high = _effective_support(prior)
     if rule.finite and not (np.isfinite(low) and np.isfinite(high)):
-        problem(where, f"got {prior.describe()}, support ({low:g}, {high:g}); a finite support "
+        problem(where, f"got {prior.describe()}, support [{low:g}, {high:g}]; a finite support "
                        "is required here (the likelihood integrates over it): use uniform, "
                        "log_uniform, truncated_normal or half_normal with high")
+        return
     dom = rule.domain
     if not dom.accepts(low, high):
         lo, hi = dom.domain
@@ -267,7 +268,7 @@ def _build_prior(table, rule: _Rule, where: str, shipped: bool, problem) -> Prio
 
 def _table_line(text: str, section: str, name: str) -> int | None:
     """1-based line of the header ``[section.name]`` in ``text`` (None if not found)."""
-    pattern = re.compile(r"^\s*\[\s*" + re.escape(section) + r"\s*\.\s*[\"']?"
+    pattern = re.compile(r"^[ \t]*\[[ \t]*" + re.escape(section) + r"\s*\.\s*[\"']?"
                          + re.escape(name) + r"[\"']?\s*\]", re.MULTILINE)
     match = pattern.search(text)
     return text.count("\n", 0, match.start()) + 1 if match else None
