@@ -1,0 +1,108 @@
+"""Evidence: dynesty against analytic linear-Gaussian evidences; Savage–Dickey cross-check."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from diskfield.evidence import nested_evidence, savage_dickey
+from diskfield.priorspec import Normal, Uniform
+from diskfield.sampling import SamplerSettings, run_sampler
+from test_sampling import SEED, ToyModel
+
+
+class _LinearGaussianPointwise:
+    """Per-record Gaussian log-likelihood of t ~ N(Phi w, 1/beta) (a class, so it pickles)."""
+
+    def __init__(self, phi, t, beta):
+        self.phi, self.t, self.beta = np.asarray(phi, float), np.asarray(t, float), beta
+
+    def __call__(self, theta):
+        mean = theta @ self.phi.T
+        return -0.5 * self.beta * (self.t - mean) ** 2 + 0.5 * np.log(self.beta / (2 * np.pi))
+
+
+def _linear_gaussian_model(phi, t, alpha, beta, names):
+    """w ~ N(0, 1/alpha) per component; t ~ N(Phi w, 1/beta); one record per body."""
+    pointwise = _LinearGaussianPointwise(phi, t, beta)
+    priors = [Normal(0.0, 1.0 / np.sqrt(alpha)) for _ in names]
+    return ToyModel(names, priors, pointwise, [f"b{i}" for i in range(len(t))])
+
+
+def _analytic_ln_evidence(phi, t, alpha, beta):
+    # ln N(t | 0, beta^-1 I + alpha^-1 Phi Phi^T), Bishop (2006), PRML eq. 3.86 (equivalent form)
+    phi = np.asarray(phi, float)
+    cov = np.eye(len(t)) / beta + phi @ phi.T / alpha
+    _, logdet = np.linalg.slogdet(cov)
+    return float(-0.5 * (t @ np.linalg.solve(cov, t) + logdet + len(t) * np.log(2 * np.pi)))
+
+
+BISHOP_PHI = [[1, 0], [1, 1], [1, 2]]
+BISHOP_T = np.array([1.0, 2.0, 2.0])
+
+
+def test_analytic_bishop_value():
+    # check value derived from Bishop (2006), PRML eq. 3.86 (REFERENCES.md table)
+    assert _analytic_ln_evidence(BISHOP_PHI, BISHOP_T, 1.0, 4.0) == pytest.approx(-4.177048,
+                                                                                   abs=1e-6)
+
+
+def test_nested_ln_z_matches_bishop_linear_gaussian():
+    # source: Bishop (2006), PRML eq. 3.86, alpha = 1, beta = 4 -> ln Z = -4.177048
+    model = _linear_gaussian_model(BISHOP_PHI, BISHOP_T, 1.0, 4.0, ("w0", "w1"))
+    ev = nested_evidence(model, seed=SEED, nlive=200, dlogz=0.05)
+    assert abs(ev.ln_evidence - (-4.177048)) < 4 * ev.ln_evidence_err
+    assert 0 < ev.ln_evidence_err < 0.5 and ev.n_calls > 0
+
+
+def test_nested_same_seed_same_result():
+    model = _linear_gaussian_model(BISHOP_PHI, BISHOP_T, 1.0, 4.0, ("w0", "w1"))
+    a = nested_evidence(model, seed=3, nlive=50, dlogz=0.5)
+    b = nested_evidence(model, seed=3, nlive=50, dlogz=0.5)
+    assert a.ln_evidence == b.ln_evidence and a.n_calls == b.n_calls
+
+
+def _nested_pair():
+    x = np.linspace(-1, 1, 8)
+    rng = np.random.default_rng(11)
+    t = 0.3 + 0.35 * x + rng.normal(0, 0.5, x.size)
+    full = _linear_gaussian_model(np.column_stack([np.ones_like(x), x]), t, 1.0, 4.0,
+                                  ("field_1au", "ring_amplitude"))
+    small = _linear_gaussian_model(np.ones((x.size, 1)), t, 1.0, 4.0, ("field_1au",))
+    exact = (_analytic_ln_evidence(np.column_stack([np.ones_like(x), x]), t, 1.0, 4.0)
+             - _analytic_ln_evidence(np.ones((x.size, 1)), t, 1.0, 4.0))
+    return full, small, exact
+
+
+@pytest.mark.slow
+def test_savage_dickey_agrees_with_nested_sampling_on_nested_models():
+    full, small, exact = _nested_pair()
+    run = run_sampler(full, seed=SEED, settings=SamplerSettings(n_walkers=16, chunk=500,
+                                                                max_steps=4000))
+    draws = run.draws()[..., 1]
+    sd = savage_dickey(draws, full.priors[1], parameter="ring_amplitude", seed=1)
+    assert sd.applicable
+    z_full = nested_evidence(full, seed=SEED, nlive=200, dlogz=0.05)
+    z_small = nested_evidence(small, seed=SEED, nlive=200, dlogz=0.05)
+    ln_b_ns = z_full.ln_evidence - z_small.ln_evidence
+    err_ns = np.hypot(z_full.ln_evidence_err, z_small.ln_evidence_err)
+    # linear-Gaussian evidences, Bishop (2006) PRML eq. 3.86
+    assert abs(ln_b_ns - exact) < 4 * err_ns
+    assert abs(sd.ln_bayes_factor - exact) < 4 * sd.ln_bayes_factor_err + 0.05
+    assert abs(sd.ln_bayes_factor - ln_b_ns) < 4 * np.hypot(sd.ln_bayes_factor_err, err_ns)
+
+
+def test_savage_dickey_not_applicable_outside_support():
+    sd = savage_dickey(np.ones(100), Uniform(0.1, 2.0), parameter="ring_amplitude")
+    assert not sd.applicable and "outside" in sd.reason and np.isnan(sd.ln_bayes_factor)
+    edge = savage_dickey(np.ones(100), Uniform(0.0, 2.0), parameter="ring_amplitude")
+    assert not edge.applicable
+
+
+def test_nested_checkpoint_resume(tmp_path):
+    model = _linear_gaussian_model(BISHOP_PHI, BISHOP_T, 1.0, 4.0, ("w0", "w1"))
+    ckpt = tmp_path / "dynesty.pkl"
+    ev = nested_evidence(model, seed=5, nlive=50, dlogz=0.5, checkpoint_file=ckpt)
+    assert ckpt.is_file()
+    again = nested_evidence(model, seed=5, nlive=50, dlogz=0.5, checkpoint_file=ckpt,
+                            resume=True)
+    assert again.ln_evidence == pytest.approx(ev.ln_evidence, abs=3 * ev.ln_evidence_err)
