@@ -236,7 +236,8 @@ class AgeResult:
         """Serialisable form (JSON output)."""
         d = {"system": self.system, "age_myr": self.age_myr, "err_myr": self.err_myr,
              "shared_err_myr": self.shared_err_myr, "sample_err_myr": self.sample_err_myr,
-             "reference": self.reference, "basis": self.basis, "components_myr": dict(self.components),
+             "reference": self.reference, "basis": self.basis,
+             "components_myr": dict(self.components),
              "inputs": dict(self.inputs),
              "constants": {k: v.as_dict() for k, v in self.constants.items()},
              "warnings": list(self.warnings)}
@@ -274,8 +275,8 @@ class _Reader:
     def number(self, table: dict, where: str, key: str, *, zero_ok: bool = False) -> float:
         """A finite number, > 0 (or >= 0 with ``zero_ok``); NaN after recording a problem."""
         value = table.get(key)
-        ok = isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
-        if ok and (value > 0 or (zero_ok and value == 0)):
+        ok = isinstance(value, (int, float)) and not isinstance(value, bool)
+        if ok and math.isfinite(value) and (value > 0 or (zero_ok and value == 0)):
             return float(value)
         need = "a finite number >= 0" if zero_ok else "a finite number > 0"
         self.problem(f"{where}.{key}", f"got {value!r}; must be {need}")
@@ -600,7 +601,8 @@ def age_from_ratio(system: str, ratio: float, ratio_err: float, *, anchor: str |
     if anchor is None:
         return cai
     anc = _anchor(constants, anchor, name)
-    return _anchored(sys_, anc, resolve_start_age(constants, start_age, start_age_err), ratio, ratio_err, cai)
+    start = resolve_start_age(constants, start_age, start_age_err)
+    return _anchored(sys_, anc, start, ratio, ratio_err, cai)
 
 
 def age_from_pbpb(age_ma: float, err_ma: float, *, start_age: float | None = None,

@@ -31,7 +31,7 @@ T_HALF = {"Al-Mg": 0.717, "Mn-Cr": 3.7, "Hf-W": 8.90}          # Myr, sources in
 T_HALF_ERR = {"Al-Mg": 0.024, "Mn-Cr": 0.37, "Hf-W": 0.09}
 AL_CAI, AL_CAI_ERR = 5.23e-5, 0.13e-5                           # Jacobsen et al. 2008, EPSL 272
 T_CAI, T_CAI_ERR = 4567.30, 0.16                                # Connelly et al. 2012, Science 338
-DOR_PB, DOR_PB_ERR = 4563.37, 0.25                              # from memory: Brennecka & Wadhwa 2012
+DOR_PB, DOR_PB_ERR = 4563.37, 0.25                      # from memory: Brennecka & Wadhwa 2012
 DOR_MN, DOR_MN_ERR = 3.24e-6, 0.04e-6                           # from memory: Glavin et al. 2004
 DOR_AL, DOR_AL_ERR = 3.98e-7, 0.15e-7                           # Schiller et al. 2015
 
