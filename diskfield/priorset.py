@@ -36,6 +36,7 @@ __all__ = [
     "PriorSet",
     "load_priors",
     "known_parameters",
+    "effective_support",
 ]
 
 #: Shipped prior files read by :func:`load_priors`, in order.
@@ -206,7 +207,9 @@ def _check_keys(table: dict, family: str, where: str, problem) -> bool:
     return ok
 
 
-def _effective_support(prior: Prior) -> tuple[float, float]:
+def effective_support(prior: Prior) -> tuple[float, float]:
+    """Support of ``prior`` as the values it can take: a log_normal's (0, inf) never attains
+    0, so its low end is the smallest positive float (for checks against a domain)."""
     low, high = prior.support
     if prior.family == "log_normal":  # support (0, inf) open at 0: never attains 0
         low = float(np.nextafter(0.0, 1.0))
@@ -214,7 +217,7 @@ def _effective_support(prior: Prior) -> tuple[float, float]:
 
 
 def _check_support(prior: Prior, rule: _Rule, where: str, problem) -> None:
-    low, high = _effective_support(prior)
+    low, high = effective_support(prior)
     if rule.finite and not (np.isfinite(low) and np.isfinite(high)):
         problem(where, f"got {prior.describe()}, support [{low:g}, {high:g}]; a finite support "
                        "is required here (the likelihood integrates over it): use uniform, "

@@ -16,7 +16,7 @@ from typing import Mapping
 import numpy as np
 from astropy import units as u
 
-from .priorset import LIKELIHOOD_PARAMETERS, PriorSet, load_priors
+from .priorset import LIKELIHOOD_PARAMETERS, PriorSet, effective_support, load_priors
 from .profiles.base import Envelope, Parameter, RadialProfile
 
 __all__ = ["check_profile"]
@@ -80,8 +80,7 @@ def _priors_for(comp, priors, fail) -> dict:
             fail(f"parameter {par.name!r} has no default prior (add [parameters.{par.name}] to "
                  "a prior file or declare default_prior)")
             continue
-        lo, hi = prior.support
-        if prior.family != "log_normal" and not par.accepts(lo, hi):
+        if not par.accepts(*effective_support(prior)):
             fail(f"parameter {par.name!r}: prior {prior.describe()} leaves the declared "
                  f"domain {par.domain}")
         found[par.name] = prior

@@ -141,6 +141,8 @@ _SCALE_PRIOR = {"bad_scale": Uniform(1.0, 2.0)}
     (_bad(lambda r, p: np.log(p["bad_scale"]) + 0 * r,
           (Parameter("bad_scale", "furlongs per banana", "x"),)), _SCALE_PRIOR, "astropy"),
     (_bad(lambda r, p: np.log(p["bad_scale"]) + 0 * r), {}, "no default prior"),
+    (_bad(lambda r, p: np.log(p["bad_scale"]) + 0 * r), {"bad_scale": Uniform(-1.0, 2.0)},
+     "leaves the declared domain"),
     (_bad(lambda r, p: np.log(p["bad_scale"] - 1.0) - r), _SCALE_PRIOR, "non-finite"),
     (_bad(lambda r, p: np.sqrt(1.5 - p["bad_scale"]) + r), _SCALE_PRIOR, "NaN"),
     (_bad(lambda r, p: np.log(p["bad_scale"]).ravel()[:1]), _SCALE_PRIOR, "shape"),
