@@ -2,8 +2,8 @@
 
 Everything here is invented: fictional parent bodies (``PB-Alpha`` ...), records made up for
 the test, posterior draws from a fixed-seed Gaussian around a made-up ring disk. The
-per-body log-likelihood variable is named ``log_lik`` (dims chain, draw, body): xarray cannot
-hold a data variable named ``body`` beside a dimension ``body`` (ArviZ drops it silently). The
+per-body log-likelihood is variable ``body`` with dims (chain, draw, body_name), as
+:mod:`diskfield.azadapter` writes it (xarray cannot hold a variable named like its dimension). The
 per-body log-likelihoods are computed from those draws with a simple Gaussian model so that
 PSIS-LOO has something sensible to chew on; nothing asserts on their values.
 """
@@ -165,13 +165,13 @@ def _idata(model, draws, fitted, body_names, seed):
              "converged": int(model == "smooth"), "n_steps": 500, "tau_max": 12.0,
              "created": "2026-01-01T00:00:00"}
     return az.from_dict(
-        posterior=draws, log_likelihood={"log_lik": ll},
+        posterior=draws, log_likelihood={"body": ll},
         sample_stats={"lp": ll.sum(-1) - 3.0, "log_likelihood": ll.sum(-1)},
         observed_data={"ln_value": ln_val},
         constant_data={"ln_err": ln_err, "is_limit": np.asarray(fitted["kind"]) == "upper_limit",
                        "body_index": body_index},
-        coords={"body": body_names, "record": list(fitted["record"])},
-        dims={"log_lik": ["body"], "ln_value": ["record"], "ln_err": ["record"],
+        coords={"body_name": body_names, "record": list(fitted["record"])},
+        dims={"body": ["body_name"], "ln_value": ["record"], "ln_err": ["record"],
               "is_limit": ["record"], "body_index": ["record"]},
         attrs=attrs)
 

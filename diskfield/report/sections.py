@@ -1,0 +1,176 @@
+"""The report's text sections: verdict, prior sensitivity, convergence, assumptions,
+exclusions and manifest."""
+from __future__ import annotations
+
+import json
+import math
+
+from ..tables import Column, TextTable, measure
+from .render import Items, Para, Pre
+
+__all__ = ["verdict_blocks", "sensitivity_blocks", "convergence_table", "convergence_blocks",
+           "assumption_blocks", "exclusion_blocks", "manifest_blocks", "CAUTION"]
+
+CAUTION = ("The conclusions rest with the authors' judgement of each record: the model treats "
+           "every fitted record as a faithful, if biased and noisy, recording of the ambient "
+           "disk field. Records whose magnetic history is in doubt should be excluded (with a "
+           "note) or tested by refitting without them.")
+
+_SPIN_TEXT = {
+    "body": ("one spin projection u = |cos θ| shared by all records of a parent body "
+             "(its remanence was acquired in one spin geometry), marginalised analytically"),
+    "record": "an independent spin projection u = |cos θ| for every record, marginalised",
+    "none": "no spin projection (non-rotating parent bodies: u = 1)",
+}
+
+
+def verdict_blocks(run, ref: str, diffs: dict) -> list:
+    """The verdict text of the comparison, with the ΔELPD agreement in numbers."""
+    blocks = []
+    if run.verdict_text:
+        blocks.append(Para(run.verdict_text))
+    sentence = run.verdict.get("sentence") or run.verdict.get("plain_sentence")
+    if sentence and sentence not in run.verdict_text:
+        blocks.append(Para(str(sentence)))
+    if not blocks:
+        blocks.append(Para("No verdict file (verdict.md / verdict.json) in this run."))
+    items = [f"{m}: ΔELPD(LOO) vs {ref} = {d['elpd_diff']:.2f} ± {d['elpd_diff_se']:.2f} "
+             f"(max Pareto k {d['pareto_k_max']:.2f})" for m, d in diffs.items() if m != ref]
+    if items:
+        blocks.append(Items(tuple(items)))
+    return blocks
+
+
+def sensitivity_blocks(ctx, run) -> list:
+    """Statement that Bayes factors depend on the priors, and the sensitivity table."""
+    blocks = [Para("Bayes factors depend on the priors, in particular on the width of the ring "
+                   "priors: a wider prior on the ring parameters spreads the ringed model's "
+                   "prior mass and lowers its evidence even when the fit is unchanged. The table "
+                   "gives ln B against the reference model with the ring priors scaled by 0.5, 1 "
+                   "and 2.")]
+    if not run.sensitivity:
+        return blocks + [Para("No prior_sensitivity.csv in this run.")]
+    cols = (Column("model", "Model", align="l"), Column("ring_prior_scale", "Ring prior scale"),
+            Column("ln_bayes_factor", "ln B", latex=r"$\ln B$"), Column("note", "Note", align="l"))
+    rows = tuple((str(r.get("model", "")), str(r.get("ring_prior_scale", "")),
+                  measure(r.get("ln_bayes_factor"), r.get("ln_bayes_factor_err")),
+                  str(r.get("note", ""))) for r in run.sensitivity)
+    table = TextTable(cols, rows, caption="Prior sensitivity of the Bayes factor",
+                      label="tab:prior_sensitivity")
+    return blocks + [ctx.table(table, "prior_sensitivity")]
+
+
+def _tau_max(fit: dict) -> float:
+    tau = fit.get("tau") or {}
+    values = tau.values() if isinstance(tau, dict) else tau
+    finite = [float(v) for v in values if v is not None and math.isfinite(float(v))]
+    return max(finite) if finite else math.nan
+
+
+def _num(x, fmt: str) -> str:
+    try:
+        x = float(x)
+    except (TypeError, ValueError):
+        return ""
+    return "" if math.isnan(x) else format(x, fmt)
+
+
+def convergence_table(run, diffs: dict) -> TextTable:
+    """τ, chain length over τ, R-hat, ESS and Pareto k per model; unconverged marked."""
+    cols = (Column("model", "Model", align="l"), Column("converged", "Converged"),
+            Column("n_walkers", "Walkers"), Column("n_steps", "Steps"),
+            Column("tau_max", "max τ", unit="steps", latex=r"$\max\tau$"),
+            Column("chain_over_tau", "Steps / τ", latex=r"steps$/\tau$"),
+            Column("acceptance", "Acceptance"), Column("rhat_max", "max R-hat",
+                                                       latex=r"$\max\hat R$"),
+            Column("ess_min", "min ESS"), Column("pareto_k_max", "max Pareto k",
+                                                 latex=r"$\max k$"),
+            Column("flags", "Flags", align="l"))
+    rows = []
+    for name, f in run.fits.items():
+        fit, d = f.fit, diffs.get(name, {})
+        ok = bool(fit.get("converged"))
+        acc = fit.get("acceptance_fraction")
+        acc = sum(acc) / len(acc) if isinstance(acc, list) and acc else acc
+        rows.append((name + ("" if ok else "*"), "yes" if ok else "NO", str(fit.get("n_walkers", "")),
+                     str(fit.get("n_steps", "")), _num(_tau_max(fit), ".1f"),
+                     _num(fit.get("chain_over_tau"), ".1f"), _num(acc, ".2f"),
+                     _num(fit.get("rhat_max"), ".3f"), _num(fit.get("ess_min"), ".0f"),
+                     _num(d.get("pareto_k_max"), ".2f"), "; ".join(map(str, fit.get("flags", [])))))
+    notes = ("Chains are trusted when longer than 50 τ (emcee documentation; Foreman-Mackey et "
+             "al. 2013, PASP 125); R-hat < 1.01 (Vehtari et al. 2021, Bayesian Analysis); "
+             "Pareto k > 0.7 marks an unreliable leave-one-body-out estimate (Vehtari, Gelman & "
+             "Gabry 2017, Stat. Comput. 27). * not converged: treat with caution.",)
+    return TextTable(cols, tuple(rows), caption="Convergence diagnostics",
+                     label="tab:convergence", notes=notes)
+
+
+def convergence_blocks(ctx, run, diffs: dict) -> list:
+    """Convergence table, and a warning line for each unconverged fit or bad Pareto k."""
+    blocks = [ctx.table(convergence_table(run, diffs), "convergence")]
+    warn = [f"Model {n} did NOT converge; its numbers are provisional."
+            for n, f in run.fits.items() if not f.fit.get("converged")]
+    warn += [f"Model {n}: {d['n_bad_k']} parent bod{'y' if d['n_bad_k'] == 1 else 'ies'} with "
+             "Pareto k > 0.7 (leave-one-out unreliable for them)."
+             for n, d in diffs.items() if d.get("n_bad_k")]
+    if warn:
+        blocks.append(Items(tuple(warn)))
+    return blocks
+
+
+def _prior_lines(section: dict, sources: dict, prefix: str) -> list:
+    return [f"{name}: {prior.describe()} — {sources.get(f'{prefix}.{name}', prior.source)}"
+            for name, prior in sorted(section.items())]
+
+
+def assumption_blocks(run, priors) -> list:
+    """What the model assumes: field direction, spin, calibration, distances, ages."""
+    spins = sorted({str(f.fit.get("spin", "body")) for f in run.fits.values()})
+    spin_text = "; ".join(f"{s}: {_SPIN_TEXT.get(s, s)}" for s in spins)
+    obliquity = ("isotropic spin axes (u ~ Uniform(0, 1))" if priors.spin_obliquity is None
+                 else f"a user prior on the obliquity: {priors.spin_obliquity.describe()}")
+    items = (
+        "The field direction was steady relative to the parent body while each remanence was "
+        "acquired, so a spinning body records the time average B |cos θ|.",
+        f"Spin treatment — {spin_text}; {obliquity}.",
+        "Calibration: each record's value is multiplied by a lognormal factor of its method and "
+        "remanence type (below); records without a method are taken to include calibration in "
+        "their stated error. Recording fractions enter as lognormal factors.",
+        "Formation distances: all records of a body share one distance, drawn from its "
+        "reservoir's prior (below) unless the compilation gives a per-body range.",
+        "Ages: Gaussian (age ± age_err), uniform windows, or the reservoir's default window.",
+        "Observation: ln values are Gaussian around ln(B u e c) with the stated error and an "
+        "intrinsic scatter added in quadrature; upper limits enter through the cumulative "
+        "distribution.",
+    )
+    return [Items(items), Para("Calibration and remanence priors:"),
+            Items(tuple(_prior_lines(priors.calibration, priors.sources, "calibration")
+                        + _prior_lines(priors.remanence, priors.sources, "remanence"))),
+            Para("Distance priors by reservoir and default age windows:"),
+            Items(tuple(_prior_lines(priors.reservoirs, priors.sources, "reservoirs")
+                        + _prior_lines(priors.age_windows, priors.sources, "age_windows"))),
+            Para(CAUTION)]
+
+
+def exclusion_blocks(run) -> list:
+    """Every excluded row with its note."""
+    t = run.compilation
+    if "include" not in t.colnames:
+        return [Para("No record was excluded.")]
+    rows = [r for r in t if str(r["include"]).strip().lower() in ("false", "0", "no")]
+    if not rows:
+        return [Para("No record was excluded.")]
+    note = (lambda r: str(r["note"]) if "note" in t.colnames and str(r["note"]).strip()
+            else "(no note given)")
+    return [Para(f"{len(rows)} record(s) kept in the file but excluded from the fit:"),
+            Items(tuple(f"{r['record']} ({r['body']}): {note(r)}" for r in rows))]
+
+
+def manifest_blocks(run) -> list:
+    """Provenance: versions, data hash, priors, seed and command line (from manifest.json)."""
+    m = run.manifest
+    if not m:
+        return [Para("No manifest.json in the run folder.")]
+    keep = {k: v for k, v in m.items() if k not in ("outputs",)}
+    lines = [f"{k}: {v}" for k, v in keep.items() if not isinstance(v, (dict, list))]
+    return [Items(tuple(lines)), Pre(json.dumps(keep, indent=1, sort_keys=True, default=str))]
