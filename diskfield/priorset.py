@@ -232,6 +232,16 @@ def _check_support(prior: Prior, rule: _Rule, where: str, problem) -> None:
                        f"lie in {interval}")
 
 
+def _check_source(source, shipped: bool, where: str, problem) -> bool:
+    """Shipped tables must cite a source; any source must be a string."""
+    if not isinstance(source, str):
+        problem(f"{where}.source", f"got {source!r}; must be a string")
+        return False
+    if shipped and not source.strip():
+        problem(f"{where}.source", "missing 'source' (a citation, or 'convention' and why)")
+    return True
+
+
 def _build_prior(table, rule: _Rule, where: str, shipped: bool, problem) -> Prior | None:
     """Validate one TOML table and build its prior (None if it has problems)."""
     if not isinstance(table, dict):
@@ -243,11 +253,7 @@ def _build_prior(table, rule: _Rule, where: str, shipped: bool, problem) -> Prio
         return None
     ok = _check_keys(table, family, where, problem)
     source = table.get("source", "")
-    if shipped and not source:
-        problem(f"{where}.source", "missing 'source' (a citation, or 'convention' and why)")
-    if not isinstance(source, str):
-        problem(f"{where}.source", f"got {source!r}; must be a string")
-        ok = False
+    ok = _check_source(source, shipped, where, problem) and ok
     factor = _unit_factor(table.get("unit", rule.unit), rule.unit)
     if isinstance(factor, str):
         problem(f"{where}.unit", factor)
@@ -260,7 +266,8 @@ def _build_prior(table, rule: _Rule, where: str, shipped: bool, problem) -> Prio
     try:
         prior = make_prior(family, unit=rule.unit, source=source, **converted)
     except ValueError as exc:
-        problem(where, str(exc))
+        converted_note = f" (after conversion to {rule.unit})" if factor != 1.0 else ""
+        problem(where, f"{exc}{converted_note}")
         return None
     _check_support(prior, rule, where, problem)
     return prior
