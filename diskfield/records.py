@@ -17,6 +17,7 @@ from __future__ import annotations
 import csv
 import difflib
 import hashlib
+import io
 import math
 import os
 import re
@@ -279,7 +280,7 @@ def _split_header(cell: str, collector: _Collector, position: int) -> tuple[str,
 
 
 def _parse_csv(text: str, collector: _Collector) -> _Raw:
-    reader = csv.reader(text.splitlines(keepends=True))
+    reader = csv.reader(io.StringIO(text, newline=""))
     headers, rows = None, []
     try:
         for cells in reader:
