@@ -162,15 +162,16 @@ def _section_rule(section: str, name: str, params: dict) -> _Rule | str:
 
 def _unit_factor(unit, internal: str) -> float | str:
     """Factor converting values in ``unit`` to ``internal``, or a message if impossible."""
+    want = internal or "dimensionless"
     if not isinstance(unit, str):
-        return f"got {unit!r}; must be a unit string such as {internal or 'dimensionless'!r}"
+        return f"got {unit!r}; must be a unit string convertible to {want}"
     try:
         given = u.Unit(unit)
+    except ValueError:
+        return f"got {unit!r}; not a unit astropy understands (expected one convertible to {want})"
+    try:
         return float(given.to(u.Unit(internal) if internal else u.dimensionless_unscaled))
-    except ValueError as exc:
-        want = internal or "dimensionless"
-        if "not a valid unit" in str(exc) or "did not parse" in str(exc):
-            return f"got {unit!r}; not a unit astropy understands (expected one convertible to {want})"
+    except u.UnitsError:
         return f"got {unit!r}; cannot be converted to {want}"
 
 

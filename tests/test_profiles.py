@@ -290,3 +290,15 @@ def test_times_before_cai_formation_count_as_zero(name):
             for k, v in load_priors().parameters.items() if k in env.parameter_names}
     out = env.log_factor(np.array([[-2.0, -0.1, 0.0]]), draw)
     np.testing.assert_allclose(out, 0.0, atol=1e-15)
+
+
+def test_ring_factor_lies_between_one_and_one_plus_amplitude(rng):
+    # analytic: 0 <= g <= 1, so 1 + A g lies between 1 and 1 + A for any signed A > -1
+    priors = load_priors().parameters
+    n = 2000
+    draw = {k: priors[k].sample(rng, n)[:, None] for k in RING_P}
+    r = rng.uniform(0.3, 25.0, (n, 6))
+    diff = get_profile("ring").log_field(r, draw) - get_profile("smooth").log_field(r, draw)
+    amp = draw["ring_amplitude"]
+    lo, hi = np.minimum(0.0, np.log1p(amp)), np.maximum(0.0, np.log1p(amp))
+    assert np.all((diff >= lo - 1e-12) & (diff <= hi + 1e-12))
