@@ -387,12 +387,20 @@ def _match_columns(raw: _Raw, collector: _Collector) -> dict[str, _Column]:
             found[key] = _Column(position, unit, None)
         else:
             unknown.append(name)
+    if not found:
+        _fail(collector.source, _no_known_columns_message(unknown))
     for name in unknown:
         collector.add(_unknown_column_message(name), column=name)
     for name in REQUIRED_COLUMNS:
         if name not in found:
             collector.add(_missing_column_message(name, unknown), column=name)
     return found
+
+
+def _no_known_columns_message(names: list[str]) -> str:
+    shown = ", ".join(repr(n) for n in names[:5]) + (", ..." if len(names) > 5 else "")
+    return (f"no compilation column in the header (got {shown}); is this a compilation file? "
+            "required columns: " + ", ".join(REQUIRED_COLUMNS))
 
 
 def _unknown_column_message(name: str) -> str:
