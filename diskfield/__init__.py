@@ -10,6 +10,7 @@ from .errors import (  # noqa: E402
     PriorFileError,
 )
 from .records import read_compilation  # noqa: E402
+from .likelihood import build_model  # noqa: E402
 
 __all__ = [
     "__version__",
@@ -18,4 +19,5 @@ __all__ = [
     "PriorFileError",
     "OptionError",
     "read_compilation",
+    "build_model",
 ]

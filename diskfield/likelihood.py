@@ -1,0 +1,755 @@
+"""The marginalised likelihood and the Model object (DESIGN §4, §7).
+
+Only the global parameters θ (profile, envelope, ``intrinsic_scatter``) are sampled; every
+latent leaves the likelihood here:
+
+* Gaussian log terms (measurement, recording fraction, calibration, σ_int) add into one
+  variance per record (:mod:`diskfield.recording`);
+* the spin projection ``X = -ln u`` in closed form (exponentially modified Gaussian), or, for
+  a body with upper limits, numerically over X with nodes in the CDF of the distribution the
+  detections put on X;
+* ages by quadrature on each record's age prior (skipped for the steady envelope);
+* the body distance by composite Gauss–Legendre quadrature on the body's distance prior, with
+  breakpoints on the profile's features and graded around the points where the model field
+  crosses the body's likelihood level (:mod:`diskfield.quadrature`). A body's records are
+  multiplied inside the distance integral: they share one distance.
+
+The per-body marginal log-likelihood is the pointwise unit.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import special
+
+from . import quadrature as quad
+from .errors import CompilationError, OptionError, PriorFileError
+from .priorspec import Normal, Uniform
+from .recording import LN_SQRT_2PI, emg_logpdf, emg_logsf, record_terms
+
+__all__ = ["SPIN_MODES", "Model", "build_model"]
+
+SPIN_MODES = ("body", "record", "none")
+
+#: Floor on a record's total log variance: a limit without stated error and without
+#: calibration terms has only σ_int, whose prior reaches 0 (numerical convention).
+_MIN_VAR = 1e-10
+
+
+@dataclass(frozen=True)
+class QuadratureSettings:
+    """Node counts of the quadrature rules (defaults tested for < 0.01 nat error).
+
+    Attributes
+    ----------
+    base_panels : int
+        Equal panels across each distance prior's support.
+    panel_nodes : int
+        Gauss–Legendre nodes per panel.
+    scout_nodes : int
+        Log-spaced points on which level crossings are searched.
+    ring_scout : int
+        Extra scout points across r0 ± 6 w of each ring.
+    max_crossings : int
+        Largest number of crossings of one level per body (5 covers two rings).
+    spin_nodes : int
+        Nodes of the numerical spin integral (bodies with upper limits).
+    age_nodes : int
+        Nodes per panel of an age integral.
+    """
+
+    base_panels: int = 3
+    panel_nodes: int = 6
+    scout_nodes: int = 48
+    ring_scout: int = 33
+    max_crossings: int = 5
+    spin_nodes: int = 16
+    age_nodes: int = 6
+
+
+@dataclass(frozen=True)
+class _Bodies:
+    """Records padded to a (n_bodies, n_max) table with masks."""
+
+    z: np.ndarray          # corrected ln values (G, n)
+    var_fixed: np.ndarray  # variance without σ_int (G, n)
+    det: np.ndarray        # detection mask (G, n)
+    lim: np.ndarray        # upper-limit mask (G, n)
+    index: np.ndarray      # record index, -1 for padding (G, n)
+    lo: np.ndarray         # distance support low (G,) AU
+    hi: np.ndarray         # distance support high (G,) AU
+    priors: tuple          # distance Prior per body
+    needs_x: np.ndarray    # body needs the numerical spin integral (G,) bool
+
+
+class Model:
+    """A fitted-model definition: priors, profile, envelope, spin mode and the data.
+
+    Build with :func:`build_model`. Holds no parameter state: every method is a pure function
+    of ``theta`` (shape ``(P,)`` or ``(W, P)``, columns in ``parameter_names`` order).
+    """
+
+    def __init__(self, comp, profile, envelope, spin, priorset, settings=None):
+        self.compilation = comp
+        self.profile, self.envelope, self.spin = profile, envelope, spin
+        self.priorset = priorset
+        self.settings = settings or QuadratureSettings()
+        names = profile.parameter_names + envelope.parameter_names + ("intrinsic_scatter",)
+        all_priors = _parameter_priors(priorset, names)
+        self.fixed = {n: p.value for n, p in zip(names, all_priors) if p.is_fixed}
+        self.parameter_names = tuple(n for n in names if n not in self.fixed)
+        self.priors = tuple(p for p in all_priors if not p.is_fixed)
+        self.body_names = comp.body_names
+        self.n_records = len(comp.records)
+        self.n_bodies = len(comp.bodies)
+        self._terms = record_terms(comp.records, priorset.calibration, priorset.remanence)
+        self._bodies = _pad_bodies(comp, self._terms, _distance_priors(comp, priorset), spin)
+        self._ages = _age_priors(comp, priorset) if envelope.time_dependent else None
+        self._obliquity = getattr(priorset, "spin_obliquity", None)
+        self.config = {"profile": profile.name, "envelope": envelope.name, "spin": spin,
+                       "prior_files": [str(f) for f in getattr(priorset, "files", ())]}
+
+    # ------------------------------------------------------------------ parameters
+    def _theta(self, theta):
+        theta = np.asarray(theta, dtype=float)
+        if theta.shape[-1:] != (len(self.parameter_names),) or theta.ndim > 2:
+            raise OptionError("theta", f"array of shape {theta.shape}",
+                              f"shape (P,) or (W, P) with P = {len(self.parameter_names)} "
+                              f"({', '.join(self.parameter_names)})")
+        return np.atleast_2d(theta), theta.ndim == 1
+
+    def params(self, theta) -> dict:
+        """Parameter name -> array of shape (W,), fixed values included."""
+        t2, _ = self._theta(theta)
+        out = {n: t2[:, i] for i, n in enumerate(self.parameter_names)}
+        out.update({n: np.full(len(t2), v) for n, v in self.fixed.items()})
+        return out
+
+    def log_prior(self, theta):
+        """Sum of the parameters' log prior densities; ``-inf`` outside the support.
+
+        Parameters
+        ----------
+        theta : ndarray, shape (P,) or (W, P)
+
+        Returns
+        -------
+        ndarray, shape (W,) (or float for 1-d input)
+        """
+        t2, one = self._theta(theta)
+        lp = np.zeros(len(t2))
+        for i, prior in enumerate(self.priors):
+            lp += prior.log_prob(t2[:, i])
+        lp[~np.isfinite(lp)] = -np.inf
+        return float(lp[0]) if one else lp
+
+    def prior_transform(self, u):
+        """Map the unit cube to parameter values (nested sampling).
+
+        Parameters
+        ----------
+        u : ndarray, shape (P,) or (W, P), values in [0, 1]
+        """
+        u = np.asarray(u, dtype=float)
+        out = np.empty_like(u)
+        for i, prior in enumerate(self.priors):
+            out[..., i] = prior.ppf(u[..., i])
+        return out
+
+    # ------------------------------------------------------------------ likelihood
+    def log_likelihood_pointwise(self, theta):
+        """Per-body marginal log-likelihood.
+
+        Parameters
+        ----------
+        theta : ndarray, shape (P,) or (W, P)
+
+        Returns
+        -------
+        ndarray, shape (W, n_bodies) (or (n_bodies,) for 1-d input); ``-inf`` rows where
+        theta is outside the prior support; never NaN.
+        """
+        t2, one = self._theta(theta)
+        out = np.full((len(t2), self.n_bodies), -np.inf)
+        ok = np.isfinite(self.log_prior(t2))
+        if np.any(ok):
+            with np.errstate(all="ignore"):
+                ll = self._body_loglike(self.params(t2[ok]))
+            out[ok] = np.where(np.isnan(ll), -np.inf, ll)
+        return out[0] if one else out
+
+    def log_likelihood(self, theta):
+        """Total marginal log-likelihood (sum over bodies), shape (W,) or float."""
+        ll = self.log_likelihood_pointwise(theta)
+        return ll.sum(axis=-1) if ll.ndim == 2 else float(ll.sum())
+
+    def log_field(self, theta, r_au, t_myr=0.0):
+        """ln(B / uT) of the disk field (no recording terms).
+
+        Parameters
+        ----------
+        theta : ndarray, shape (P,) or (W, P)
+        r_au : array_like
+            Distance [AU].
+        t_myr : array_like
+            Time after CAI formation [Myr] (broadcast with ``r_au``).
+
+        Returns
+        -------
+        ndarray, shape (W,) + broadcast(r_au, t_myr).shape
+        """
+        t2, _ = self._theta(theta)
+        r, t = np.broadcast_arrays(np.asarray(r_au, float), np.asarray(t_myr, float))
+        p = _expand(self.params(t2), r.ndim)
+        shape = (len(t2),) + r.shape
+        rr, tt = np.broadcast_to(r, shape), np.broadcast_to(t, shape)
+        return self.profile.log_field(rr, p) + self.envelope.log_factor(tt, p)
+
+    def body_distance_posterior(self, theta):
+        """Posterior of each body's distance given theta, on the quadrature nodes.
+
+        Returns
+        -------
+        r_nodes : ndarray, shape (W, n_bodies, K) [AU]
+        weights : ndarray, shape (W, n_bodies, K), summing to 1 over K
+        """
+        t2, _ = self._theta(theta)
+        with np.errstate(all="ignore"):
+            r, log_terms = self._distance_terms(self.params(t2))
+        total = quad.log_sum_exp(log_terms, axis=-1)[..., None]
+        w = np.exp(log_terms - total)
+        return r, np.where(np.isfinite(w), w, 0.0)
+
+    def simulate_ln_values(self, theta, rng):
+        """ln values simulated through the full recording model, shape (W, n_records)."""
+        from .simulate import simulate_ln_values
+
+        return simulate_ln_values(self, theta, rng)
+
+    # ------------------------------------------------------------------ internals
+    def _body_loglike(self, p):
+        _, log_terms = self._distance_terms(p)
+        return quad.log_sum_exp(log_terms, axis=-1)
+
+    def _distance_terms(self, p):
+        """Distance nodes (W, G, K) and ln(weight x prior x integrand) at them."""
+        b = self._bodies
+        var = np.maximum(b.var_fixed + p["intrinsic_scatter"][:, None, None] ** 2, _MIN_VAR)
+        stats = _detection_stats(b.z, var, b.det)
+        ages = _age_rule(self._ages, self.envelope, p, self.settings) if self._ages else None
+        level, scale = self._level(b, var, stats, ages)
+        r, logw = self._distance_rule(p, level, scale)
+        phi = self.profile.log_field(r, _expand(p, 2))
+        log_f = self._log_integrand(phi, b, var, stats, ages, p)
+        logp = np.empty_like(r)
+        for g, prior in enumerate(b.priors):
+            logp[:, g] = prior.log_prob(r[:, g])
+        return r, logw + logp + log_f
+
+    def _level(self, b, var, stats, ages):
+        """ln-field level and its scale (W, G) around which each body's integrand is sharp."""
+        zbar, v, _ = stats
+        z = np.where(b.det | b.lim, b.z, np.nan)
+        if ages is not None:
+            zbar, v, _ = _detection_stats(b.z - ages.mean_log_factor, var + ages.var_log_factor,
+                                          b.det)
+        if self.spin == "record":
+            zmax = np.nanmax(np.where(b.det, z, -np.inf), axis=-1)
+            zbar = np.where(np.isfinite(zmax), zmax, zbar)
+            v = np.where(np.isfinite(zmax), np.min(np.where(b.det, var, np.inf), axis=-1), v)
+        no_det = ~np.isfinite(v)
+        zlim = np.nanmin(np.where(b.lim, z, np.inf), axis=-1)
+        vlim = np.min(np.where(b.lim, var, np.inf), axis=-1)
+        level = np.where(no_det, zlim, zbar)
+        scale = np.sqrt(np.where(no_det, vlim, v))
+        return level, np.where(np.isfinite(scale), scale, 1.0)
+
+    def _distance_rule(self, p, level, scale):
+        """Composite Gauss–Legendre nodes in r (W, G, K) and ln weights."""
+        s, b = self.settings, self._bodies
+        w = len(level)
+        lo = np.broadcast_to(b.lo, level.shape)
+        hi = np.broadcast_to(b.hi, level.shape)
+        base = b.lo[:, None] + (b.hi - b.lo)[:, None] * np.linspace(0, 1, s.base_panels + 1)
+        features = _feature_breaks(p, self.profile)
+        scout = _scout_grid(b, features, p, s)
+        phi_s = self.profile.log_field(scout, _expand(p, 1))
+        cross, slope = _crossings(self.profile, p, scout, phi_s, level, b, s.max_crossings)
+        width = scale[..., None] / np.maximum(np.abs(slope), 1e-12)
+        graded = quad.graded_breaks(cross, width, lo[..., None], hi[..., None])
+        edge, edge_width = _edge_point(scout, phi_s, level, scale, b)
+        edge_breaks = quad.graded_breaks(edge, edge_width, lo, hi)
+        parts = [np.broadcast_to(base, (w,) + base.shape), edge_breaks,
+                 graded.reshape(w, len(b.lo), -1)]
+        if features is not None:
+            parts.append(np.clip(features[:, None, :], lo[..., None], hi[..., None]))
+        breaks = np.sort(np.concatenate(parts, axis=-1), axis=-1)
+        return quad.panel_rule(breaks, s.panel_nodes)
+
+    def _log_integrand(self, phi, b, var, stats, ages, p):
+        """ln p(records of body | ln R = phi) at the distance nodes, shape (W, G, K)."""
+        if ages is not None:
+            return _integrand_aged(phi, b, var, ages, self.spin, self.settings)
+        if self.spin == "none":
+            return _integrand_no_spin(phi, b, var, stats)
+        if self.spin == "record":
+            return _integrand_record_spin(phi, b, var)
+        out = _integrand_body_spin(phi, stats)
+        if np.any(b.needs_x):
+            gx = np.flatnonzero(b.needs_x)
+            sub = _subset(b, var, stats, gx)
+            out[:, gx] = _integrand_body_spin_numeric(phi[:, gx], *sub, self.settings.spin_nodes)
+        return out
+
+
+# ---------------------------------------------------------------------- setup helpers
+def _parameter_priors(priorset, names):
+    if hasattr(priorset, "parameter_priors"):
+        return priorset.parameter_priors(names)
+    missing = [n for n in names if n not in priorset.parameters]
+    if missing:
+        raise PriorFileError(f"no prior for parameter(s) {', '.join(missing)}; add "
+                             "[parameters.<name>] tables to a prior file")
+    return tuple(priorset.parameters[n] for n in names)
+
+
+def _finite_support(prior, what):
+    lo, hi = prior.support
+    if not (np.isfinite(lo) and np.isfinite(hi) and hi > lo):
+        raise PriorFileError(f"{what}: the prior {prior.describe()} must have a finite support "
+                             "(use uniform, log_uniform, truncated_normal or half_normal with high)")
+    return lo, hi
+
+
+def _distance_priors(comp, priorset):
+    """Distance prior of each body (override -> uniform; else its reservoir's)."""
+    out = []
+    for body in comp.bodies:
+        if np.isfinite(body.distance_min) and np.isfinite(body.distance_max):
+            out.append(Uniform(body.distance_min, body.distance_max, unit="AU",
+                               source="per-body override"))
+            continue
+        if body.reservoir not in priorset.reservoirs:
+            raise CompilationError(
+                f"body {body.name!r}: reservoir {body.reservoir!r} has no distance prior in the "
+                f"prior files; defined: {', '.join(sorted(priorset.reservoirs)) or 'none'}",
+                source=comp.source)
+        prior = priorset.reservoirs[body.reservoir]
+        lo, _ = _finite_support(prior, f"[reservoirs.{body.reservoir}] (body {body.name!r})")
+        if lo <= 0:
+            raise PriorFileError(f"[reservoirs.{body.reservoir}]: distance support must be > 0 AU;"
+                                 f" got {prior.describe()}")
+        out.append(prior)
+    return tuple(out)
+
+
+def _pad_bodies(comp, terms, priors, spin):
+    recs = comp.records
+    n_max = max(len(b.record_indices) for b in comp.bodies)
+    g = len(comp.bodies)
+    index = np.full((g, n_max), -1)
+    for k, body in enumerate(comp.bodies):
+        index[k, :len(body.record_indices)] = body.record_indices
+    valid = index >= 0
+    safe = np.where(valid, index, 0)
+    is_lim = np.asarray(recs.is_limit, bool)[safe] & valid
+    det = valid & ~is_lim
+    n_lim = is_lim.sum(axis=1)
+    needs_x = (n_lim > 1) | ((n_lim == 1) & det.any(axis=1))
+    support = np.array([p.support for p in priors], float)
+    return _Bodies(z=np.where(valid, terms.z[safe], 0.0),
+                   var_fixed=np.where(valid, terms.var_fixed[safe], 1.0),
+                   det=det, lim=is_lim, index=index, lo=support[:, 0], hi=support[:, 1],
+                   priors=priors, needs_x=needs_x & (spin == "body"))
+
+
+def _expand(p, extra_dims):
+    return {k: np.reshape(v, (-1,) + (1,) * extra_dims) for k, v in p.items()}
+
+
+# ---------------------------------------------------------------------- node placement
+def _feature_breaks(p, profile):
+    """Breakpoints on the profile's own features (rings: r0 + w x offsets; breaks), (W, F)."""
+    names = set(profile.parameter_names)
+    offsets = np.array([-6.0, -3.0, -1.5, 0.0, 1.5, 3.0, 6.0])
+    cols = []
+    for prefix in ("ring", "ring2"):
+        if f"{prefix}_radius" in names and f"{prefix}_width" in names:
+            cols.append(p[f"{prefix}_radius"][:, None] + p[f"{prefix}_width"][:, None] * offsets)
+    if "break_radius" in names:
+        cols.append(p["break_radius"][:, None])
+    return np.concatenate(cols, axis=1) if cols else None
+
+
+def _scout_grid(b, features, p, s):
+    """Increasing scout abscissae (W, N): log-spaced over all supports, plus feature points."""
+    lo, hi = b.lo.min(), b.hi.max()
+    base = np.geomspace(lo, hi, s.scout_nodes)
+    pts = [np.broadcast_to(np.concatenate([base, b.lo, b.hi]),
+                             (len(p["intrinsic_scatter"]), len(base) + 2 * len(b.lo)))]
+    for prefix in ("ring", "ring2"):
+        if f"{prefix}_radius" in p:
+            u = np.linspace(-6.0, 6.0, s.ring_scout)
+            pts.append(p[f"{prefix}_radius"][:, None] + p[f"{prefix}_width"][:, None] * u)
+    if features is not None and "break_radius" in p:
+        pts.append(p["break_radius"][:, None])
+    grid = np.clip(np.concatenate(pts, axis=1), lo, hi)
+    return np.sort(grid, axis=1)
+
+
+def _crossings(profile, p, scout, phi_s, level, b, max_count):
+    """Points (W, G, M) where ln R crosses each body's level, and ln R's slope there."""
+    w, g = level.shape
+    x = np.broadcast_to(scout[:, None, :], (w, g, scout.shape[1]))
+    f = phi_s[:, None, :] - level[..., None]
+    mid = 0.5 * (x[..., 1:] + x[..., :-1])
+    valid = (mid > b.lo[:, None]) & (mid < b.hi[:, None])
+    lo, hi, f_lo, f_hi, found = quad.first_crossings(x, f, valid, max_count)
+    if lo.shape[-1] == 0:
+        return np.broadcast_to(b.lo[None, :, None], (w, g, 1)), np.ones((w, g, 1))
+    pe = _expand(p, 2)
+    root = quad.refine_crossings(lambda r: profile.log_field(r, pe) - level[..., None],
+                                 lo, hi, f_lo, f_hi)
+    slope = (f_hi - f_lo) / np.maximum(hi - lo, 1e-300)
+    root = np.where(found, root, b.lo[None, :, None])
+    return root, np.where(found, slope, 1.0)
+
+
+def _edge_point(scout, phi_s, level, scale, b):
+    """Support end whose ln R is nearest each body's level, with a grading width (W, G)."""
+    w, g = level.shape
+    idx_lo = np.argmin(np.abs(scout[:, None, :] - b.lo[:, None]), axis=-1)
+    idx_hi = np.argmin(np.abs(scout[:, None, :] - b.hi[:, None]), axis=-1)
+    rows = np.arange(w)[:, None]
+    phi_lo, phi_hi = phi_s[rows, idx_lo], phi_s[rows, idx_hi]
+    d_lo, d_hi = np.abs(phi_lo - level), np.abs(phi_hi - level)
+    use_lo = d_lo <= d_hi
+    edge = np.where(use_lo, b.lo, b.hi)
+    step = np.where(use_lo, 1, -1)
+    nb = np.clip(np.where(use_lo, idx_lo, idx_hi) + step, 0, scout.shape[1] - 1)
+    slope = np.abs(phi_s[rows, nb] - np.where(use_lo, phi_lo, phi_hi)) / np.maximum(
+        np.abs(scout[rows, nb] - edge), 1e-12)
+    dist = np.minimum(d_lo, d_hi)
+    phi_width = np.minimum(scale, scale * scale / np.maximum(dist, 1e-300))
+    return edge, phi_width / np.maximum(slope, 1e-12)
+
+
+# ---------------------------------------------------------------------- integrands
+def _detection_stats(z, var, det):
+    """Precision-weighted mean, variance V and ln K of each body's detections (W, G).
+
+    Notes
+    -----
+    prod_i N(z_i; mu, S_i^2) = K N(zbar; mu, V), V = 1/sum S_i^-2, zbar = V sum z_i/S_i^2,
+    ln K = -1/2 sum ln(2 pi S_i^2) + 1/2 ln(2 pi V) - 1/2 sum (z_i - zbar)^2 / S_i^2 (derived).
+    Bodies without detections get V = inf, zbar = 0, ln K = 0.
+    """
+    prec = np.where(det, 1.0 / var, 0.0)
+    tot = prec.sum(axis=-1)
+    has = tot > 0
+    v = np.where(has, 1.0 / np.where(has, tot, 1.0), np.inf)
+    zbar = np.where(has, (prec * z).sum(axis=-1) * np.where(has, v, 0.0), 0.0)
+    resid = np.where(det, z - zbar[..., None], 0.0)
+    ln_k = (-0.5 * np.where(det, np.log(var), 0.0).sum(axis=-1) - LN_SQRT_2PI * det.sum(axis=-1)
+            + np.where(has, 0.5 * np.log(np.where(has, v, 1.0)) + LN_SQRT_2PI, 0.0)
+            - 0.5 * (prec * resid * resid).sum(axis=-1))
+    return zbar, v, ln_k
+
+
+def _integrand_body_spin(phi, stats):
+    """Closed form for bodies of detections only (or a single limit): ln K + EMG density."""
+    zbar, v, ln_k = (a[..., None] for a in stats)
+    return ln_k + emg_logpdf(phi - zbar, np.where(np.isfinite(v), v, 1.0))
+
+
+def _subset(b, var, stats, gx):
+    """Limits (compacted to (Gx, L)) and detection stats of the bodies ``gx``."""
+    lim = b.lim[gx]
+    n_l = max(int(lim.sum(axis=1).max()), 1)
+    order = np.argsort(~lim, axis=1, kind="stable")[:, :n_l]
+    take = lambda a: np.take_along_axis(a, order, axis=-1)  # noqa: E731
+    zl = take(b.z[gx])
+    vl = np.take_along_axis(var[:, gx], order[None], axis=-1)
+    zbar, v, ln_k = (a[:, gx] for a in stats)
+    return zl, vl, take(lim), zbar, v, ln_k
+
+
+def _integrand_body_spin_numeric(phi, z, var, lim, zbar, v, ln_k, n_nodes):
+    """Body-shared spin with upper limits: integral over X by Gauss–Legendre in a CDF.
+
+    With detections, X ~ q(X) ∝ e^-X N(zbar; phi - X, V) on X >= 0 is a normal of mean
+    phi - zbar - V and variance V truncated at 0, whose mass is the EMG density; the limits'
+    product of normal CDFs is averaged over q with nodes in q's CDF (an exact change of
+    variables). Without detections, X ~ Exp(1) restricted to X >= X0 (nodes in its CDF) plus
+    Gauss–Legendre on [0, X0], X0 placed 4 sd before the tightest limit starts to pass.
+    """
+    u, w = quad.gauss_legendre_unit(n_nodes)
+    log_u1, log_w = np.log1p(-u), np.log(w)
+    has_det = np.isfinite(v)
+    out = np.empty(phi.shape)
+    args = (z, var, lim)
+    if np.any(has_det):
+        g = np.flatnonzero(has_det.any(axis=0))
+        vv = np.where(has_det[:, g], v[:, g], 1.0)[..., None]
+        sd = np.sqrt(vv)
+        d = phi[:, g] - zbar[:, g, None]
+        mu = d - vv
+        x = mu[..., None] - sd[..., None] * special.ndtri_exp(
+            special.log_ndtr(mu / sd)[..., None] + log_u1)
+        mass = ln_k[:, g, None] + emg_logpdf(d, vv)
+        out[:, g] = mass + quad.log_sum_exp(_log_limits(phi[:, g], x, *(a[..., g, :] if a.ndim == 3
+                                                                          else a[g] for a in args))
+                                            + log_w, axis=-1)
+    if not np.all(has_det):
+        g = np.flatnonzero(~has_det.all(axis=0))
+        zg, vg, lg = z[g], var[:, g], lim[g]
+        slack = phi[:, g, :, None] - zg[None, :, None, :] - 4.0 * np.sqrt(vg[:, :, None, :])
+        x0 = np.maximum(np.max(np.where(lg[None, :, None, :], slack, 0.0), axis=-1), 0.0)
+        high = -x0 + quad.log_sum_exp(_log_limits(phi[:, g], x0[..., None] - log_u1, zg, vg, lg)
+                                      + log_w, axis=-1)
+        x_low = x0[..., None] * u
+        with np.errstate(divide="ignore"):
+            low = quad.log_sum_exp(_log_limits(phi[:, g], x_low, zg, vg, lg) - x_low + log_w
+                                   + np.log(x0)[..., None], axis=-1)
+        out[:, g] = np.logaddexp(high, low)
+    return out
+
+
+def _log_limits(phi, x, z, var, lim):
+    """sum_j ln Phi((z_j - phi + X) / S_j) over each body's limits; x shape (W, G, K, Q)."""
+    arg = (z[None, :, None, None, :] - phi[..., None, None] + x[..., None]) / np.sqrt(
+        var[:, :, None, None, :])
+    return np.where(lim[None, :, None, None, :], special.log_ndtr(arg), 0.0).sum(axis=-1)
+
+
+def _integrand_no_spin(phi, b, var, stats):
+    """Non-rotating bodies: Gaussian product of detections times normal CDFs of limits."""
+    zbar, v, ln_k = (a[..., None] for a in stats)
+    has = np.isfinite(v)
+    out = np.where(has, ln_k - 0.5 * (phi - zbar) ** 2 / np.where(has, v, 1.0)
+                   - 0.5 * np.log(np.where(has, v, 1.0)) - LN_SQRT_2PI, 0.0)
+    if np.any(b.lim):
+        arg = (b.z[None, :, None, :] - phi[..., None]) / np.sqrt(var[:, :, None, :])
+        out = out + np.where(b.lim[None, :, None, :], special.log_ndtr(arg), 0.0).sum(axis=-1)
+    return out
+
+
+def _integrand_record_spin(phi, b, var):
+    """Independent spin per record: one EMG density (detection) or survival (limit) each."""
+    d = phi[..., None] - b.z[None, :, None, :]
+    vv = var[:, :, None, :]
+    dens = np.where(b.det[None, :, None, :], emg_logpdf(d, vv), 0.0)
+    if np.any(b.lim):
+        dens = dens + np.where(b.lim[None, :, None, :], emg_logsf(d, vv), 0.0)
+    return dens.sum(axis=-1)
+
+
+# ---------------------------------------------------------------------- ages
+@dataclass(frozen=True)
+class _AgeRule:
+    """Age nodes per record: t (W, G, n, Q) [Myr] and ln weights; summaries per record."""
+
+    log_factor: np.ndarray       # ln T(t) at the nodes (W, G, n, Q)
+    logw: np.ndarray             # ln weights (W, G, n, Q), logsumexp over Q = 0
+    mean_log_factor: np.ndarray  # (W, G, n)
+    var_log_factor: np.ndarray   # (W, G, n)
+
+
+@dataclass(frozen=True)
+class _AgePriors:
+    """Each padded record's age prior as an inverse-CDF family (G, n)."""
+
+    kind: np.ndarray   # 0 normal, 1 uniform/window
+    a: np.ndarray      # mean or low [Myr]
+    b: np.ndarray      # sd or high [Myr]
+    window: dict       # (G, n) mask -> Prior for non-uniform reservoir windows
+
+
+def _age_priors(comp, priorset):
+    """Age priors of the padded records; windows must have finite support."""
+    recs = comp.records
+    n_max = max(len(b.record_indices) for b in comp.bodies)
+    g = len(comp.bodies)
+    kind, a, bb = np.ones((g, n_max), int), np.zeros((g, n_max)), np.ones((g, n_max))
+    windows = {}
+    for k, body in enumerate(comp.bodies):
+        for j, i in enumerate(body.record_indices):
+            ak = recs.age_kind[i]
+            if ak in ("normal", "uniform"):
+                kind[k, j] = 0 if ak == "normal" else 1
+                a[k, j], bb[k, j] = recs.age_a[i], recs.age_b[i]
+                continue
+            prior = priorset.age_windows.get(body.reservoir)
+            if prior is None:
+                raise CompilationError(
+                    f"record {recs.record[i]!r} (body {body.name!r}) has no age and reservoir "
+                    f"{body.reservoir!r} has no [age_windows.{body.reservoir}] prior; defined: "
+                    f"{', '.join(sorted(priorset.age_windows)) or 'none'}", source=comp.source)
+            lo, hi = _finite_support(prior, f"[age_windows.{body.reservoir}]")
+            if isinstance(prior, Uniform):
+                a[k, j], bb[k, j] = lo, hi
+            else:
+                windows.setdefault(id(prior), (prior, np.zeros((g, n_max), bool)))[1][k, j] = True
+                kind[k, j] = 2
+    return _AgePriors(kind=kind, a=a, b=bb, window={k: v for k, v in windows.items()})
+
+
+def _age_cdf_ppf(ages):
+    """cdf(t) and ppf(u) vectorised over padded records (broadcasting on leading axes)."""
+    def cdf(t):
+        out = np.where(ages.kind == 0, special.ndtr((t - ages.a) / ages.b),
+                       np.clip((t - ages.a) / (ages.b - ages.a), 0.0, 1.0))
+        for prior, mask in ages.window.values():
+            out = np.where(mask, prior.cdf(t), out)
+        return out
+
+    def ppf(u):
+        out = np.where(ages.kind[..., None] == 0,
+                       ages.a[..., None] + ages.b[..., None] * special.ndtri(u),
+                       ages.a[..., None] + (ages.b - ages.a)[..., None] * u)
+        for prior, mask in ages.window.values():
+            out = np.where(mask[..., None], prior.ppf(u), out)
+        return out
+
+    return cdf, ppf
+
+
+def _age_rule(ages, envelope, p, s):
+    """Nodes in each record's age-prior CDF, split at the envelope's features (per walker)."""
+    cdf, ppf = _age_cdf_ppf(ages)
+    feats = _envelope_features(p)
+    w = len(p["intrinsic_scatter"])
+    breaks = [np.zeros((w,) + ages.a.shape + (1,)), np.ones((w,) + ages.a.shape + (1,))]
+    if feats is not None:
+        breaks.append(np.clip(_cdf_points(cdf, feats), 0.0, 1.0))
+    u_breaks = np.sort(np.concatenate(breaks, axis=-1), axis=-1)
+    u, logw = quad.panel_rule(u_breaks, s.age_nodes)
+    u = np.clip(u, 1e-15, 1 - 1e-15)
+    t = _ppf_nodes(ppf, u)  # (W, G, n, Q)
+    lf = envelope.log_factor(t, _expand(p, 3))
+    wts = np.exp(logw)
+    mean = (wts * lf).sum(-1)
+    var = (wts * (lf - mean[..., None]) ** 2).sum(-1)
+    return _AgeRule(log_factor=lf, logw=logw, mean_log_factor=mean, var_log_factor=var)
+
+
+def _cdf_points(cdf, feats):
+    """cdf of each record's age prior at each walker's feature times: (W, G, n, F)."""
+    t = feats[:, None, None, :]
+    return np.stack([cdf(t[..., k]) for k in range(feats.shape[1])], axis=-1)
+
+
+def _ppf_nodes(ppf, u):
+    """ppf of each record's prior at u of shape (W, G, n, Q)."""
+    w = u.shape[0]
+    flat = np.moveaxis(u, 0, 2).reshape(u.shape[1], u.shape[2], -1)
+    t = ppf(flat).reshape(u.shape[1], u.shape[2], w, u.shape[3])
+    return np.moveaxis(t, 2, 0)
+
+
+def _envelope_features(p):
+    """Times [Myr] where the envelope changes fast, (W, F), or None."""
+    if "dissipation_time" not in p:
+        return None
+    offsets = np.array([-8.0, -3.0, -1.0, 0.0, 1.0, 3.0, 8.0])
+    return p["dissipation_time"][:, None] + p["dissipation_edge"][:, None] * offsets
+
+
+def _integrand_aged(phi, b, var, ages, spin, s):
+    """Records with ages on their priors (time-dependent envelope), shape (W, G, K)."""
+    lf = ages.log_factor[:, :, None]          # (W, G, 1, n, Q)
+    lw = ages.logw[:, :, None]
+    z = b.z[None, :, None, :, None]
+    vv = var[:, :, None, :, None]
+    det, lim = b.det[None, :, None, :], b.lim[None, :, None, :]
+    mu = phi[..., None, None] + lf            # ln B at (W, G, K, n, Q)
+    if spin == "none":
+        dens = quad.log_sum_exp(lw - 0.5 * (z - mu) ** 2 / vv - 0.5 * np.log(vv) - LN_SQRT_2PI)
+        cens = quad.log_sum_exp(lw + special.log_ndtr((z - mu) / np.sqrt(vv)))
+    elif spin == "record":
+        dens = quad.log_sum_exp(lw + emg_logpdf(mu - z, vv))
+        cens = quad.log_sum_exp(lw + emg_logsf(mu - z, vv))
+    else:
+        return _integrand_aged_body_spin(phi, b, var, ages, s)
+    return np.where(det, dens, 0.0).sum(-1) + np.where(lim, cens, 0.0).sum(-1)
+
+
+def _integrand_aged_body_spin(phi, b, var, ages, s):
+    """Body-shared spin with ages: X by nodes in the CDF of a truncated-normal proposal.
+
+    The proposal q(X) is the e^-X N(...) form of the steady case with each record's ln T
+    replaced by its age-prior mean and its variance added; the integrand f/q is exact
+    (importance mapping), so the proposal only has to cover where f lives.
+    """
+    veff = var + ages.var_log_factor
+    zbar, v, _ = _detection_stats(b.z - ages.mean_log_factor, veff, b.det)
+    has = np.isfinite(v)[..., None]
+    vq = np.where(has, v[..., None], 1.0)
+    sd = np.sqrt(vq)
+    mu_q = phi - zbar[..., None] - vq
+    u, w = quad.gauss_legendre_unit(s.spin_nodes)
+    log_tail = special.log_ndtr(mu_q / sd)
+    xq = mu_q[..., None] - sd[..., None] * special.ndtri_exp(log_tail[..., None] + np.log1p(-u))
+    x = np.where(has[..., None], xq, -np.log1p(-u))   # (W, G, K, Q_x)
+    log_q = np.where(has[..., None], -0.5 * ((x - mu_q[..., None]) / sd[..., None]) ** 2
+                     - np.log(sd[..., None]) - LN_SQRT_2PI - log_tail[..., None], -x)
+    lf = ages.log_factor[:, :, None, None]     # (W, G, 1, 1, n, Q)
+    lw = ages.logw[:, :, None, None]
+    mu = phi[..., None, None, None] - x[..., None, None] + lf
+    z = b.z[None, :, None, None, :, None]
+    vv = var[:, :, None, None, :, None]
+    dens = quad.log_sum_exp(lw - 0.5 * (z - mu) ** 2 / vv - 0.5 * np.log(vv) - LN_SQRT_2PI)
+    cens = quad.log_sum_exp(lw + special.log_ndtr((z - mu) / np.sqrt(vv)))
+    det, lim = b.det[None, :, None, None, :], b.lim[None, :, None, None, :]
+    log_f = -x + np.where(det, dens, 0.0).sum(-1) + np.where(lim, cens, 0.0).sum(-1)
+    return quad.log_sum_exp(log_f - log_q + np.log(w), axis=-1)
+
+
+# ---------------------------------------------------------------------- factory
+def build_model(comp, profile: str = "ring", envelope: str = "steady", spin: str = "body",
+                priors=None, settings: QuadratureSettings | None = None) -> Model:
+    """Build the marginalised model of a compilation.
+
+    Parameters
+    ----------
+    comp : diskfield.records.Compilation
+        The validated compilation.
+    profile : str
+        Radial profile name (``diskfield profiles`` lists them).
+    envelope : str
+        Temporal envelope name (default ``steady``).
+    spin : {"body", "record", "none"}
+        Spin-projection mode (default ``body``: one projection per parent body).
+    priors : PriorSet, path, list of paths, or None
+        A loaded :class:`~diskfield.priorset.PriorSet`, prior file path(s) (read on top of the
+        shipped defaults by :func:`~diskfield.priorset.load_priors`), or None for the shipped
+        files.
+    settings : QuadratureSettings, optional
+        Node counts (defaults are tested for < 0.01 nat quadrature error).
+
+    Returns
+    -------
+    Model
+
+    Raises
+    ------
+    OptionError
+        Unknown profile, envelope or spin mode (the message lists the valid names).
+    PriorFileError, CompilationError
+        Missing priors, priors without finite support, or bodies whose reservoir has no
+        distance prior (naming the body and the reservoir).
+    """
+    from .profiles import get_envelope, get_profile
+
+    if spin not in SPIN_MODES:
+        raise OptionError("spin", spin, "one of " + ", ".join(SPIN_MODES))
+    prof, env = get_profile(profile), get_envelope(envelope)
+    if not hasattr(priors, "parameters"):
+        from .priorset import load_priors
+
+        priors = load_priors(priors)
+    if len(comp.records) == 0 or len(comp.bodies) == 0:
+        raise CompilationError("the compilation has no included records to fit",
+                               source=comp.source)
+    return Model(comp, prof, env, spin, priors, settings)
