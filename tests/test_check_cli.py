@@ -107,3 +107,18 @@ def test_shipped_flawed_demo_files_are_rejected(path, capsys):
     assert main(["check", str(path)]) == 2
     lines = capsys.readouterr().err.strip().splitlines()
     assert lines and all(ln.startswith(PREFIX + str(path)) for ln in lines)
+
+
+def test_priors_option_adds_reservoirs(tmp_path, small_compilation_path, capsys):
+    path = tmp_path / "custom.csv"
+    path.write_text(small_compilation_path.read_text().replace(",CC,", ",outer_belt,"))
+    assert main(["check", str(path)]) == 2
+    assert "got 'outer_belt'; valid (any case): NC, CC, CC_distal" in capsys.readouterr().err
+    priors = tmp_path / "mine.toml"
+    priors.write_text('[reservoirs.Outer_Belt]\nfamily = "uniform"\nlow = 9.0\nhigh = 15.0\n'
+                      'unit = "AU"\nsource = "convention"\n')
+    assert main(["check", str(path), "--priors", str(priors)]) == 0
+    assert "Outer_Belt" in capsys.readouterr().out
+    priors.write_text("[reservoirs.Outer_Belt\n")
+    assert main(["check", str(path), "--priors", str(priors)]) == 2
+    assert "not valid TOML" in capsys.readouterr().err

@@ -4,6 +4,7 @@ Examples::
 
     diskfield check compilation.ecsv
     diskfield check compilation.csv --format json
+    diskfield check compilation.csv --priors my_reservoirs.toml
 
 Exit status 0 with a summary (records per reservoir and kind, bodies, unit conversions,
 corrections divided out, exclusions with their notes); exit status 2 with every problem of
@@ -15,7 +16,7 @@ import json
 from collections import Counter
 
 from ..errors import CompilationError, Problem
-from ..records import KINDS, Compilation, read_compilation
+from ..records import KINDS, Compilation, known_reservoir_names, read_compilation
 
 __all__ = ["NAME", "HELP", "add_arguments", "run", "summarize", "format_summary"]
 
@@ -29,15 +30,20 @@ def add_arguments(parser) -> None:
                         "'name [unit]' headers)")
     parser.add_argument("--format", choices=("text", "json"), default="text",
                         help="output format (default: text)")
+    parser.add_argument("--priors", action="append", default=[], metavar="FILE",
+                        help="prior TOML file whose [reservoirs.<NAME>] tables add valid "
+                        "reservoir names (repeatable)")
 
 
 def run(args) -> int:
     """Validate ``args.file``; print the summary (exit 0) or the problems (exit 2)."""
+    reservoirs = known_reservoir_names(args.priors)
     if args.format == "text":
-        print(format_summary(summarize(read_compilation(args.file))))
+        print(format_summary(summarize(read_compilation(args.file,
+                                                        known_reservoirs=reservoirs))))
         return 0
     try:
-        comp = read_compilation(args.file)
+        comp = read_compilation(args.file, known_reservoirs=reservoirs)
     except CompilationError as err:
         print(json.dumps(_json_report(err.problems, None, args.file), indent=2))
         return 2
