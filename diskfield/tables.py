@@ -14,6 +14,8 @@ import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
+
 from .sigfig import format_significant, round_asymmetric, round_to_decimals, round_with_uncertainty
 
 __all__ = [
@@ -443,7 +445,7 @@ def _row_get(row, name, default):
     if name not in row.colnames:
         return default
     value = row[name]
-    if getattr(value, "mask", False) is True or value is None:
+    if value is None or np.ma.is_masked(value):
         return default
     if isinstance(value, float) and math.isnan(value):
         return default

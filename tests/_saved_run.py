@@ -15,7 +15,7 @@ from pathlib import Path
 import arviz as az
 import numpy as np
 from astropy import units as u
-from astropy.table import Table
+from astropy.table import MaskedColumn, Table
 
 __all__ = ["make_saved_run", "BODIES"]
 
@@ -90,7 +90,7 @@ source = "test value"
 """
 
 _TRUTH = {"field_1au": 60.0, "power_index": 1.2, "ring_amplitude": 1.5, "ring_radius": 4.5,
-          "ring_width": 0.8, "intrinsic_scatter": 0.2}
+          "ring_width": 0.8, "intrinsic_scatter": 0.5}
 _SPREAD = {"field_1au": 8.0, "power_index": 0.15, "ring_amplitude": 0.4, "ring_radius": 0.3,
            "ring_width": 0.15, "intrinsic_scatter": 0.05}
 _MODEL_PARAMS = {"smooth": ("field_1au", "power_index", "intrinsic_scatter"),
@@ -102,21 +102,27 @@ def _compilation() -> Table:
     rows = [("A-1", "PB-Alpha", "estimate", 9.0, 3.0, 2.0, 0.3, "thermal", "TRM", True, ""),
             ("A-2", "PB-Alpha", "estimate", 12.0, 4.0, 2.1, 0.3, "ARM", "TRM", True, ""),
             ("B-1", "PB-Beta", "upper_limit", 6.0, np.nan, 3.0, 0.5, "IRM", "", True, ""),
-            ("G-1", "PB-Gamma", "estimate", 40.0, 10.0, 3.5, 0.4, "ARM", "CRM", True,
+            ("G-1", "PB-Gamma", "estimate", 14.0, 4.0, 3.5, 0.4, "ARM", "CRM", True,
              "fine_grained matrix & 50% weathered"),
             ("G-2", "PB-Gamma", "estimate", 30.0, 12.0, np.nan, np.nan, "IRM", "", False,
              "excluded: overprint {suspected} ~ 2 $ rows"),
-            ("D-1", "PB-Delta", "estimate", 25.0, 8.0, 2.5, 0.5, "thermal", "unknown", True,
+            ("D-1", "PB-Delta", "estimate", 5.0, 2.0, 2.5, 0.5, "thermal", "unknown", True,
              "")]
     cols = list(zip(*rows))
+    def masked(values, unit):  # absent values are masked (written blank), never NaN
+        values = np.array(values, float)
+        return MaskedColumn(values, mask=np.isnan(values), unit=unit)
+
+    def text(values):
+        return MaskedColumn(list(values), mask=[v == "" for v in values])
+
     t = Table([list(cols[0]), list(cols[1]), [BODIES[b][0] for b in cols[1]], list(cols[2]),
-               np.array(cols[3]) * u.uT, np.array(cols[4]) * u.uT, np.array(cols[5]) * u.Myr,
-               np.array(cols[6]) * u.Myr, list(cols[7]), list(cols[8]), list(cols[9]),
-               list(cols[10])],
+               masked(cols[3], u.uT), masked(cols[4], u.uT), masked(cols[5], u.Myr),
+               masked(cols[6], u.Myr), text(cols[7]), text(cols[8]), list(cols[9]),
+               text(cols[10])],
               names=["record", "body", "reservoir", "kind", "paleointensity",
                      "paleointensity_err", "age", "age_err", "method", "remanence", "include",
                      "note"])
-    t["row"] = np.arange(1, len(t) + 1)
     return t
 
 
@@ -137,7 +143,10 @@ def _draws(model: str, rng, n_chain: int, n_draw: int) -> dict:
 
 
 def _fitted(comp: Table) -> Table:
-    return comp[np.asarray(comp["include"], bool)]
+    fitted = comp[np.asarray(comp["include"], bool)]
+    for name in ("paleointensity_err", "age", "age_err"):
+        fitted[name] = np.ma.filled(fitted[name].astype(float), np.nan)
+    return fitted
 
 
 def _body_loglik(draws: dict, fitted: Table, body_names: list) -> np.ndarray:

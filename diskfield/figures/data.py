@@ -135,6 +135,8 @@ def _float(row, name, default=math.nan) -> float:
     if name not in row.colnames:
         return default
     v = row[name]
+    if np.ma.is_masked(v):
+        return default
     try:
         v = float(v)
     except (TypeError, ValueError):
@@ -143,7 +145,7 @@ def _float(row, name, default=math.nan) -> float:
 
 
 def _text(row, name) -> str:
-    if name not in row.colnames or getattr(row[name], "mask", False) is True:
+    if name not in row.colnames or np.ma.is_masked(row[name]):
         return ""
     return str(row[name]).strip()
 

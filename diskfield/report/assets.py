@@ -71,7 +71,7 @@ def body_points(run, fit, priors):
         res = {str(row["body"]): str(row["reservoir"]) for row in run.compilation}
         names = list(fit.model.body_names)
         return F.body_points_from_posterior(r, w, names, [res.get(n, "") for n in names]), \
-            "posterior"
+            f"posterior:{fit.name}"
     return F.body_points_from_prior(run.compilation, priors.reservoirs), "prior"
 
 
@@ -84,9 +84,9 @@ def _epochs(run) -> list[float]:
 
 
 def _distance_caption(source: str) -> str:
-    if source == "posterior":
+    if source.startswith("posterior"):
         return ("Body distances: posterior median and 16th–84th percentiles (horizontal bars), "
-                "pooled over posterior draws of the first model.")
+                f"pooled over posterior draws of model {source.split(':')[1]}.")
     return ("Body distances: median and 16th–84th percentiles of the distance *prior* "
             "(the model could not be rebuilt, so no posterior distances are shown).")
 

@@ -5,6 +5,8 @@ from __future__ import annotations
 import json
 import math
 
+import numpy as np
+
 from ..tables import Column, TextTable, measure
 from .render import Items, Para, Pre
 
@@ -157,11 +159,12 @@ def exclusion_blocks(run) -> list:
     t = run.compilation
     if "include" not in t.colnames:
         return [Para("No record was excluded.")]
-    rows = [r for r in t if str(r["include"]).strip().lower() in ("false", "0", "no")]
+    rows = [r for r in t if not np.ma.is_masked(r["include"])
+            and str(r["include"]).strip().lower() in ("false", "0", "no")]
     if not rows:
         return [Para("No record was excluded.")]
-    note = (lambda r: str(r["note"]) if "note" in t.colnames and str(r["note"]).strip()
-            else "(no note given)")
+    note = (lambda r: str(r["note"]).strip() if "note" in t.colnames
+            and not np.ma.is_masked(r["note"]) and str(r["note"]).strip() else "(no note given)")
     return [Para(f"{len(rows)} record(s) kept in the file but excluded from the fit:"),
             Items(tuple(f"{r['record']} ({r['body']}): {note(r)}" for r in rows))]
 
