@@ -116,7 +116,8 @@ def test_broken_and_colliding_plugins_are_skipped_with_a_warning(fake_entry_poin
     assert "'bad'" in text and "no module named fake_pkg" in text
     assert "'notaprofile'" in text and "int" in text
     assert "'clash'" in text and "built-in" in text
-    assert get_profile("smooth") is registry.SMOOTH
+    with pytest.warns(UserWarning, match="'clash'"):
+        assert get_profile("smooth") is registry.SMOOTH
 
 
 # --------------------------------------------------------------------- conformance
@@ -150,6 +151,8 @@ _SCALE_PRIOR = {"bad_scale": Uniform(1.0, 2.0)}
     (_bad(lambda r, p: np.log(np.multiply(r, 2.0, out=r))), _SCALE_PRIOR, "mutated"),
     (_bad(lambda r, p: r * np.random.uniform() + p["bad_scale"]), _SCALE_PRIOR, "not pure"),
 ])
+@pytest.mark.filterwarnings("ignore:divide by zero:RuntimeWarning",
+                            "ignore:invalid value:RuntimeWarning")
 def test_conformance_check_catches_faulty_plugins(component, priors, expected):
     with pytest.raises(AssertionError, match=expected):
         check_profile(component, priors)
