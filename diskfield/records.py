@@ -36,6 +36,7 @@ __all__ = [
     "Compilation",
     "read_compilation",
     "write_compilation",
+    "compilation_table",
     "known_reservoir_names",
     "KINDS",
     "METHODS",
@@ -954,10 +955,61 @@ def write_compilation(data, path, *, format=None, overwrite=True) -> Path:
     return path
 
 
+def compilation_table(comp: Compilation):
+    """The table ``write_compilation`` writes for ``comp``.
+
+    A compilation read from a file has its ``table``; one built in memory (synthetic,
+    ``table=None``) gets a table rebuilt from its records and bodies: paleointensity in
+    uT (spin factor re-applied), ``ln_err``, ages, methods, remanence types, recording
+    fractions and per-body distance overrides. Reading that table back gives the same
+    ``Records`` (to rounding).
+
+    Parameters
+    ----------
+    comp : Compilation
+
+    Returns
+    -------
+    astropy.table.Table
+    """
+    from astropy.table import Table
+
+    if comp.table is not None:
+        return comp.table
+    recs = comp.records
+    body = [comp.bodies[i] for i in recs.body_index]
+    table = Table()
+    table["record"] = recs.record.astype(str)
+    table["body"] = [b.name for b in body]
+    table["reservoir"] = [b.reservoir for b in body]
+    table["kind"] = np.where(recs.is_limit, "upper_limit", "estimate")
+    table["paleointensity"] = np.exp(recs.ln_value) * recs.spin_factor
+    table["paleointensity"].unit = "uT"
+    table["ln_err"] = recs.ln_err
+    _add_age_columns(table, recs)
+    table["method"], table["remanence"] = recs.method.astype(str), recs.remanence.astype(str)
+    table["spin_factor_applied"] = recs.spin_factor
+    table["recording_fraction"] = np.exp(recs.ln_fraction_mean)
+    table["recording_fraction_err"] = recs.ln_fraction_sd * np.exp(recs.ln_fraction_mean)
+    for name, attr in (("distance_min", "distance_min"), ("distance_max", "distance_max")):
+        table[name] = [getattr(b, attr) for b in body]
+        table[name].unit = "AU"
+    return table
+
+
+def _add_age_columns(table, recs: Records):
+    normal, uniform = recs.age_kind == "normal", recs.age_kind == "uniform"
+    for name, mask, values in (("age", normal, recs.age_a), ("age_err", normal, recs.age_b),
+                               ("age_min", uniform, recs.age_a),
+                               ("age_max", uniform, recs.age_b)):
+        table[name] = np.where(mask, values, np.nan)
+        table[name].unit = "Myr"
+
+
 def _writable_table(data):
     from astropy.table import MaskedColumn, Table
 
-    source = data.table if isinstance(data, Compilation) else data
+    source = compilation_table(data) if isinstance(data, Compilation) else data
     table = Table(source, masked=False, copy=True)
     if "row" in table.colnames:
         table.remove_column("row")

@@ -637,3 +637,20 @@ def test_hash_row_below_header_is_data_not_a_comment(tmp_path):
     rows[2]["record"] = "# B-1"
     comp = read(write_rows(tmp_path / "c.csv", rows))
     assert "# B-1" in comp.records.record.tolist() and len(comp.table) == 4
+
+
+def test_in_memory_compilation_without_table_round_trips(tmp_path, small_compilation):
+    import dataclasses
+
+    bare = dataclasses.replace(small_compilation, table=None, excluded=())
+    for suffix in ("ecsv", "csv"):
+        back = read(write_compilation(bare, tmp_path / f"bare.{suffix}"))
+        for name in ("ln_value", "ln_err", "age_a", "age_b", "ln_fraction_mean",
+                     "ln_fraction_sd", "spin_factor"):
+            np.testing.assert_allclose(getattr(back.records, name),
+                                       getattr(small_compilation.records, name),
+                                       rtol=1e-12, atol=1e-15, equal_nan=True)
+        for field in ("record", "body_index", "is_limit", "age_kind", "method", "remanence"):
+            assert (getattr(back.records, field).tolist()
+                    == getattr(small_compilation.records, field).tolist())
+        assert back.bodies == small_compilation.bodies
