@@ -17,7 +17,7 @@ from .errors import DiskfieldError
 __all__ = ["main", "COMMANDS"]
 
 #: Command modules under ``diskfield.commands``, in the order ``--help`` lists them.
-COMMANDS = ("check", "ages", "profiles")
+COMMANDS = ("check", "ages", "profiles", "report")
 
 
 class _Parser(argparse.ArgumentParser):
