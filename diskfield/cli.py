@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 
 from . import __version__
@@ -60,6 +61,11 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"diskfield {args.command}: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # Output piped into e.g. `head` that closed early: not an error of ours.
+        # Point stdout at devnull so the interpreter's final flush does not complain.
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
 
 
 if __name__ == "__main__":  # pragma: no cover
