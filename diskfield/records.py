@@ -400,8 +400,10 @@ def _match_columns(raw: _Raw, collector: _Collector) -> dict[str, _Column]:
 
 def _no_known_columns_message(names: list[str]) -> str:
     shown = ", ".join(repr(n) for n in names[:5]) + (", ..." if len(names) > 5 else "")
-    return (f"no compilation column in the header (got {shown}); is this a compilation file? "
-            "required columns: " + ", ".join(REQUIRED_COLUMNS))
+    other = next((d for d in (";", "\t", "|") if any(d in n for n in names)), None)
+    hint = f" (columns must be separated by commas, not {other!r})" if other else ""
+    return (f"no compilation column in the header (got {shown}){hint}; is this a compilation "
+            "file? required columns: " + ", ".join(REQUIRED_COLUMNS))
 
 
 def _unknown_column_message(name: str) -> str:

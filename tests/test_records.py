@@ -399,6 +399,8 @@ def test_ragged_csv_row_is_reported(tmp_path):
     ("header_only.csv", b"record,body,reservoir,kind,paleointensity [uT]\n", "no data rows"),
     ("comment_only.csv", b"# nothing here\n", "no header"),
     ("other_table.csv", b"lorem,ipsum\n1,2\n", "no compilation column"),
+    ("semicolons.csv", b"record;body;reservoir;kind;paleointensity [uT]\nA;B;NC;estimate;3\n",
+     "separated by commas, not ';'"),
     ("plain.ecsv", b"record,body\n1,2\n", "# %ECSV"),
     ("broken.ecsv", b"# %ECSV 1.0\n# ---\n# datatype: [\nrecord\nA\n", "cannot be read as ECSV"),
 ])
