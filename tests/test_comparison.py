@@ -1,0 +1,161 @@
+"""Model comparison: Kass-Raftery categories, verdict logic, prior scaling, toy comparisons."""
+from __future__ import annotations
+
+import csv
+import json
+import tomllib
+
+import numpy as np
+import pytest
+
+from diskfield.comparison import (COMPARISON_COLUMNS, compare, kass_raftery, scale_prior,
+                                  verdict)
+from diskfield.errors import ConvergenceError, OptionError
+from diskfield.priorspec import LogUniform, Normal, Uniform, make_prior
+from diskfield.runs import load_comparison
+from diskfield.sampling import SamplerSettings
+from test_sampling import SEED, ToyModel
+
+
+def test_kass_raftery_cuts():
+    # Kass & Raftery (1995, JASA 90, 773): 2 ln B cuts at 2, 6, 10
+    assert kass_raftery(1.99) == "not worth more than a bare mention"
+    assert kass_raftery(2.0) == "positive" and kass_raftery(-5.9) == "positive"
+    assert kass_raftery(6.0) == "strong" and kass_raftery(10.1) == "very strong"
+    assert kass_raftery(float("nan")) == "not computed"
+
+
+def test_scale_prior_definitions():
+    amp, note = scale_prior("ring_amplitude", Uniform(-0.9, 10.0), 0.5)
+    assert (amp.low, amp.high) == (-0.45, 5.0) and note == ""
+    amp2, note2 = scale_prior("ring_amplitude", Uniform(-0.9, 10.0), 2.0)
+    assert amp2.low == -0.99 and amp2.high == 20.0 and "clipped" in note2
+    rad, _ = scale_prior("ring_radius", Uniform(1.0, 9.0), 0.5)
+    assert (rad.low, rad.high) == (3.0, 7.0)
+    wid, _ = scale_prior("ring_width", LogUniform(0.1, 3.0), 2.0)
+    # geometric centre kept, ln-width doubled
+    assert np.sqrt(wid.low * wid.high) == pytest.approx(np.sqrt(0.3))
+    assert np.log(wid.high / wid.low) == pytest.approx(2 * np.log(30.0))
+    nrm, _ = scale_prior("ring_radius", Normal(4.0, 1.0), 2.0)
+    assert (nrm.mean, nrm.sd) == (4.0, 2.0)
+
+
+def _row(model, ln_b, err, d, dse, converged=True):
+    return {"model": model, "ln_bayes_factor": ln_b, "ln_bayes_factor_err": err,
+            "elpd_diff": d, "elpd_diff_se": dse, "converged": converged}
+
+
+def _sens(model, values):
+    return [{"model": model, "ring_prior_scale": s, "ln_bayes_factor": v,
+             "ln_bayes_factor_err": 0.2, "note": ""} for s, v in zip((0.5, 1.0, 2.0), values)]
+
+
+def test_verdict_demands_ring_only_when_decisive_and_robust():
+    rows = [_row("smooth", 0, 0, 0, 0), _row("ring", 6.0, 0.2, 5.0, 1.5)]
+    v = verdict(rows, _sens("ring", [6.5, 6.0, 5.4]), "smooth")
+    assert v["ring_demanded"] and v["models"]["ring"]["category"] == "very strong"
+    assert v["models"]["ring"]["agree"] and "demand a ring" in v["sentence"]
+    # same ln B, but doubling the ring prior drops 2 ln B below 6: not robust, not demanded
+    v2 = verdict(rows, _sens("ring", [4.0, 6.0, 2.5]), "smooth")
+    assert not v2["ring_demanded"] and "not decisively" in v2["sentence"]
+    # unconverged: never decisive, and said so
+    rows3 = [_row("smooth", 0, 0, 0, 0), _row("ring", 6.0, 0.2, 5.0, 1.5, converged=False)]
+    v3 = verdict(rows3, _sens("ring", [6.5, 6.0, 5.4]), "smooth")
+    assert not v3["ring_demanded"] and "Unconverged" in v3["sentence"]
+
+
+def test_verdict_says_when_data_cannot_decide_and_flags_disagreement():
+    rows = [_row("smooth", 0, 0, 0, 0), _row("ring", 0.4, 0.2, 3.5, 1.0)]
+    v = verdict(rows, _sens("ring", [0.9, 0.4, -0.3]), "smooth")
+    assert not v["ring_demanded"] and "cannot decide" in v["sentence"]
+    assert v["models"]["ring"]["loo_favours"] == "ring" and not v["models"]["ring"]["agree"]
+    assert "disagree" in v["sentence"].lower()
+
+
+class _LinearPointwise:
+    def __init__(self, x, y, sigma, with_slope):
+        self.x, self.y, self.sigma, self.with_slope = x, y, sigma, with_slope
+
+    def __call__(self, theta):
+        mean = theta[:, :1] + (theta[:, 1:2] * self.x if self.with_slope else 0.0)
+        return (-0.5 * ((self.y - mean) / self.sigma) ** 2
+                - np.log(self.sigma * np.sqrt(2 * np.pi)))
+
+
+def _toy_builder(slope, sigma=0.1):
+    x = np.linspace(-1, 1, 10)
+    y = 0.3 + slope * x + np.random.default_rng(3).normal(0, sigma, x.size)
+
+    def build(name, extra):
+        priors = {"field_1au": Normal(0.0, 1.0), "ring_amplitude": Uniform(-2.0, 2.0)}
+        for path in extra:
+            for pname, d in tomllib.loads(path.read_text())["parameters"].items():
+                d = dict(d)
+                priors[pname] = make_prior(d.pop("family"), d.pop("unit", ""),
+                                           d.pop("source", ""), **d)
+        ring = name == "ring"
+        names = ("field_1au", "ring_amplitude") if ring else ("field_1au",)
+        return ToyModel(names, [priors[n] for n in names], _LinearPointwise(x, y, sigma, ring),
+                        [f"b{i}" for i in range(x.size)], profile=name)
+    return build
+
+
+SETTINGS = SamplerSettings(n_walkers=16, chunk=250, max_steps=3000, n_starts=2)
+
+
+@pytest.mark.slow
+def test_toy_comparison_finds_the_slope_and_occam_scaling(tmp_path):
+    result = compare(None, ["smooth", "ring"], build=_toy_builder(0.6), seed=SEED,
+                     out=tmp_path / "cmp", settings=SETTINGS, nlive=100, dlogz=0.1)
+    ring = next(r for r in result.rows if r["model"] == "ring")
+    assert ring["two_ln_bayes_factor"] > 10 and result.verdict["ring_demanded"]
+    # Occam factor: with the likelihood well inside every prior, ln Z scales as
+    # -ln(prior width) (common practice, no source: Laplace approximation, MacKay 2003 ch. 28)
+    sens = {s["ring_prior_scale"]: s for s in result.sensitivity}
+    widths = {0.5: 1.99, 1.0: 4.0, 2.0: 8.0}  # scale 0.5 clipped at the -0.99 floor
+    for s in (0.5, 2.0):
+        expected = sens[1.0]["ln_bayes_factor"] + np.log(widths[1.0] / widths[s])
+        assert abs(sens[s]["ln_bayes_factor"] - expected) < 4 * np.hypot(
+            sens[s]["ln_bayes_factor_err"], sens[1.0]["ln_bayes_factor_err"])
+    assert "clipped" in sens[0.5]["note"]
+    saved = load_comparison(tmp_path / "cmp")
+    with open(tmp_path / "cmp" / "comparison.csv") as fh:
+        header = next(csv.reader(fh))
+    assert tuple(header[:len(COMPARISON_COLUMNS)]) == COMPARISON_COLUMNS
+    assert set(saved.fits) == {"smooth", "ring"}
+    assert json.loads((tmp_path / "cmp" / "verdict.json").read_text())["ring_demanded"]
+    for name in ("comparison.md", "comparison.tex", "verdict.md", "prior_sensitivity.csv",
+                 "posterior_summary_ring.csv", "field_profile_smooth.csv", "manifest.json",
+                 "ring/evidence.json", "ring/posterior.nc", "ring/fit.json"):
+        assert (tmp_path / "cmp" / name).is_file(), name
+
+
+@pytest.mark.slow
+def test_toy_comparison_without_slope_does_not_demand_a_ring():
+    result = compare(None, ["smooth", "ring"], build=_toy_builder(0.0), seed=SEED,
+                     settings=SETTINGS, nlive=100, dlogz=0.1)
+    ring = next(r for r in result.rows if r["model"] == "ring")
+    assert ring["two_ln_bayes_factor"] < 2 and not result.verdict["ring_demanded"]
+    sd = result.savage_dickey["ring"][1]
+    # Savage-Dickey vs nested-sampling ln B on a nested toy (Dickey 1971)
+    assert sd.applicable
+    assert abs(sd.ln_bayes_factor - ring["ln_bayes_factor"]) < 4 * np.hypot(
+        sd.ln_bayes_factor_err, ring["ln_bayes_factor_err"]) + 0.1
+
+
+def test_no_evidence_and_strict(tmp_path):
+    settings = SamplerSettings(n_walkers=16, chunk=50, max_steps=50, n_starts=1)
+    with pytest.raises(ConvergenceError, match="unconverged"):
+        compare(None, ["smooth", "ring"], build=_toy_builder(0.6), seed=SEED, evidence=False,
+                settings=settings, strict=True, out=tmp_path / "c")
+    rows = list(csv.DictReader(open(tmp_path / "c" / "comparison.csv")))
+    assert all(r["converged"] == "false" and "NOT CONVERGED" in r["note"] for r in rows)
+    assert all(r["ln_evidence"] == "" for r in rows)
+    assert "evidence not computed" in (tmp_path / "c" / "prior_sensitivity.csv").read_text()
+
+
+def test_bad_model_options():
+    with pytest.raises(OptionError, match="--models"):
+        compare(None, ["smooth"], build=_toy_builder(0.0))
+    with pytest.raises(OptionError, match="--reference"):
+        compare(None, ["smooth", "ring"], reference="broken", build=_toy_builder(0.0))
