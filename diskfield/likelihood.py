@@ -278,7 +278,7 @@ class Model:
         cross, slope = _crossings(self.profile, p, scout, phi_s, level, b, s.max_crossings)
         width = scale[..., None] / np.maximum(np.abs(slope), 1e-12)
         graded = quad.graded_breaks(cross, width, lo[..., None], hi[..., None])
-        edge, edge_width = _edge_point(scout, phi_s, level, scale, b)
+        edge, edge_width = _approach_point(self.profile, p, scout, phi_s, level, scale, b)
         edge_breaks = quad.graded_breaks(edge, edge_width, lo, hi)
         parts = [np.broadcast_to(base, (w,) + base.shape), edge_breaks,
                  graded.reshape(w, len(b.lo), -1)]
@@ -416,23 +416,39 @@ def _crossings(profile, p, scout, phi_s, level, b, max_count):
     return root, np.where(found, slope, 1.0)
 
 
-def _edge_point(scout, phi_s, level, scale, b):
-    """Support end whose ln R is nearest each body's level, with a grading width (W, G)."""
+def _approach_point(profile, p, scout, phi_s, level, scale, b):
+    """Where ln R comes closest to each body's level, and the integrand's width there (W, G).
+
+    When the field never reaches a body's level the integrand is a Gaussian tail
+    exp(-(ln R - c)^2 / 2 s^2) peaked at the closest approach (a support end or an extremum
+    of ln R, e.g. a ring top); with g = (ln R - c)^2 / 2 s^2 its width is
+    ~ min(s / |ln R'|, 1 / |g'|, 1 / sqrt|g''|).
+    """
     w, g = level.shape
-    idx_lo = np.argmin(np.abs(scout[:, None, :] - b.lo[:, None]), axis=-1)
-    idx_hi = np.argmin(np.abs(scout[:, None, :] - b.hi[:, None]), axis=-1)
+    x = scout[:, None, :]
+    dist = np.where((x >= b.lo[:, None]) & (x <= b.hi[:, None]),
+                    np.abs(phi_s[:, None, :] - level[..., None]), np.inf)
+    k = np.argmin(dist, axis=-1)
+    km, kp = np.maximum(k - 1, 0), np.minimum(k + 1, scout.shape[1] - 1)
     rows = np.arange(w)[:, None]
-    phi_lo, phi_hi = phi_s[rows, idx_lo], phi_s[rows, idx_hi]
-    d_lo, d_hi = np.abs(phi_lo - level), np.abs(phi_hi - level)
-    use_lo = d_lo <= d_hi
-    edge = np.where(use_lo, b.lo, b.hi)
-    step = np.where(use_lo, 1, -1)
-    nb = np.clip(np.where(use_lo, idx_lo, idx_hi) + step, 0, scout.shape[1] - 1)
-    slope = np.abs(phi_s[rows, nb] - np.where(use_lo, phi_lo, phi_hi)) / np.maximum(
-        np.abs(scout[rows, nb] - edge), 1e-12)
-    dist = np.minimum(d_lo, d_hi)
-    phi_width = np.minimum(scale, scale * scale / np.maximum(dist, 1e-300))
-    return edge, phi_width / np.maximum(slope, 1e-12)
+    r0, rm, rp = scout[rows, k], scout[rows, km], scout[rows, kp]
+    f0, fm, fp = phi_s[rows, k], phi_s[rows, km], phi_s[rows, kp]
+    # vertex of the parabola through the three scout points (an extremum between them)
+    num = (r0 - rm) ** 2 * (f0 - fp) - (r0 - rp) ** 2 * (f0 - fm)
+    den = (r0 - rm) * (f0 - fp) - (r0 - rp) * (f0 - fm)
+    vertex = r0 - 0.5 * num / np.where(np.abs(den) > 0, den, np.inf)
+    centre = np.clip(vertex, np.maximum(rm, b.lo), np.minimum(rp, b.hi))
+    h = 1e-4 * np.maximum(scale, 1e-3) * np.maximum(centre, 0.1)
+    pts = np.stack([centre - h, centre, centre + h], axis=-1)
+    ph = profile.log_field(pts, _expand(p, 2))
+    d1 = (ph[..., 2] - ph[..., 0]) / (2 * h)
+    d2 = (ph[..., 2] - 2 * ph[..., 1] + ph[..., 0]) / (h * h)
+    off = ph[..., 1] - level
+    v = scale * scale
+    g1, g2 = np.abs(off * d1) / v, np.abs(d1 * d1 + off * d2) / v
+    width = np.minimum(scale / np.maximum(np.abs(d1), 1e-12),
+                       np.minimum(1.0 / np.maximum(g1, 1e-12), 1.0 / np.sqrt(np.maximum(g2, 1e-24))))
+    return centre, width
 
 
 # ---------------------------------------------------------------------- integrands
