@@ -71,13 +71,13 @@ def round_to_decimals(x: float, decimals: int) -> str:
     Returns
     -------
     str
-        E.g. ``round_to_decimals(12345, -2) == "12300"``; ``"-0"`` is written ``"0"``.
+        E.g. ``round_to_decimals(12345, -2) == "12300"``; a rounded zero has no sign
+        (``"-0.0"`` is written ``"0.0"``).
     """
     if not math.isfinite(x):
         return _nonfinite(x)
     q = _decimal(x).quantize(Decimal(1).scaleb(-decimals), rounding=ROUND_HALF_UP)
-    text = f"{q:f}"
-    return "0" if text.strip("-0.") == "" else text
+    return f"{q.copy_abs() if q.is_zero() else q:f}"
 
 
 def round_with_uncertainty(value: float, err: float, *, fallback_sig: int = 3) -> tuple[str, str]:
