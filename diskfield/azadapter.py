@@ -25,7 +25,7 @@ import numpy as np
 
 from .manifest import atomic_path
 
-__all__ = ["LOG_LIK_VAR", "BODY_DIM", "make_inference_data", "save_netcdf", "load_netcdf",
+__all__ = ["LOG_LIK_VAR", "BODY_DIM", "make_inference_data", "run_attrs", "save_netcdf", "load_netcdf",
            "posterior_arrays", "pointwise_log_likelihood", "psis_loo", "waic", "rhat_ess",
            "pareto_k_threshold"]
 
@@ -75,13 +75,25 @@ def make_inference_data(draws, names, pointwise, *, lp, body_names, observed=Non
             "ln_err": np.asarray(observed["ln_err"], float),
             "is_limit": np.asarray(observed["is_limit"], np.int8),
             "body_index": np.asarray(observed["body_index"], np.int64)}
+    attrs = _clean_attrs(attrs or {})
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # "log_likelihood in sample_stats" deprecation note
-        return az.from_dict(
+        idata = az.from_dict(
             posterior=posterior, log_likelihood={LOG_LIK_VAR: np.asarray(pointwise, float)},
             sample_stats={"lp": np.asarray(lp, float),
                           "log_likelihood": np.asarray(pointwise, float).sum(axis=-1)},
-            coords=coords, dims=dims, attrs=_clean_attrs(attrs or {}), **kwargs)
+            coords=coords, dims=dims, attrs=attrs, **kwargs)
+    # ArviZ 0.23 keeps ``attrs`` at the top level only; readers that open the netCDF
+    # posterior group directly (xarray) find the provenance there too.
+    idata.posterior.attrs.update(attrs)
+    return idata
+
+
+def run_attrs(idata) -> dict:
+    """Provenance attributes of a saved run (top level merged over the posterior group's)."""
+    out = dict(idata.posterior.attrs)
+    out.update(dict(getattr(idata, "attrs", {}) or {}))
+    return out
 
 
 def _clean_attrs(attrs):
