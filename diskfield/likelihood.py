@@ -57,15 +57,19 @@ class QuadratureSettings:
         Nodes of the numerical spin integral (bodies with upper limits).
     age_nodes : int
         Nodes per panel of an age integral.
+    grade_factors : tuple of float
+        Breakpoints at these multiples of the integrand's width either side of each crossing
+        and of the closest approach.
     """
 
-    base_panels: int = 3
-    panel_nodes: int = 6
+    base_panels: int = 2
+    panel_nodes: int = 4
     scout_nodes: int = 48
     ring_scout: int = 33
     max_crossings: int = 5
     spin_nodes: int = 16
     age_nodes: int = 6
+    grade_factors: tuple = (1.0, 3.0, 9.0)
 
 
 @dataclass(frozen=True)
@@ -275,13 +279,17 @@ class Model:
         features = _feature_breaks(p, self.profile)
         scout = _scout_grid(b, features, p, s)
         phi_s = self.profile.log_field(scout, _expand(p, 1))
-        cross, slope = _crossings(self.profile, p, scout, phi_s, level, b, s.max_crossings)
+        cross, slope, found = _crossings(self.profile, p, scout, phi_s, level, b,
+                                         s.max_crossings)
         width = scale[..., None] / np.maximum(np.abs(slope), 1e-12)
-        graded = quad.graded_breaks(cross, width, lo[..., None], hi[..., None])
+        # the closest approach of ln R to the level is a crossing when there is one; without
+        # one it is where the integrand peaks (a Gaussian tail): it takes the first slot
         edge, edge_width = _approach_point(self.profile, p, scout, phi_s, level, scale, b)
-        edge_breaks = quad.graded_breaks(edge, edge_width, lo, hi)
-        parts = [np.broadcast_to(base, (w,) + base.shape), edge_breaks,
-                 graded.reshape(w, len(b.lo), -1)]
+        cross[..., 0] = np.where(found[..., 0], cross[..., 0], edge)
+        width[..., 0] = np.where(found[..., 0], width[..., 0], edge_width)
+        cross = np.where(np.isnan(cross), lo[..., None], cross)  # unused slots: empty panels
+        graded = quad.graded_breaks(cross, width, lo[..., None], hi[..., None], s.grade_factors)
+        parts = [np.broadcast_to(base, (w,) + base.shape), graded.reshape(w, len(b.lo), -1)]
         if features is not None:
             parts.append(np.clip(features[:, None, :], lo[..., None], hi[..., None]))
         breaks = np.sort(np.concatenate(parts, axis=-1), axis=-1)
@@ -399,7 +407,7 @@ def _scout_grid(b, features, p, s):
 
 
 def _crossings(profile, p, scout, phi_s, level, b, max_count):
-    """Points (W, G, M) where ln R crosses each body's level, and ln R's slope there."""
+    """Points (W, G, M) where ln R crosses each body's level, ln R's slope there, and a mask."""
     w, g = level.shape
     x = np.broadcast_to(scout[:, None, :], (w, g, scout.shape[1]))
     f = phi_s[:, None, :] - level[..., None]
@@ -407,13 +415,12 @@ def _crossings(profile, p, scout, phi_s, level, b, max_count):
     valid = (mid > b.lo[:, None]) & (mid < b.hi[:, None])
     lo, hi, f_lo, f_hi, found = quad.first_crossings(x, f, valid, max_count)
     if lo.shape[-1] == 0:
-        return np.broadcast_to(b.lo[None, :, None], (w, g, 1)), np.ones((w, g, 1))
+        return np.full((w, g, 1), np.nan), np.ones((w, g, 1)), np.zeros((w, g, 1), bool)
     pe = _expand(p, 2)
     root = quad.refine_crossings(lambda r: profile.log_field(r, pe) - level[..., None],
                                  lo, hi, f_lo, f_hi)
     slope = (f_hi - f_lo) / np.maximum(hi - lo, 1e-300)
-    root = np.where(found, root, b.lo[None, :, None])
-    return root, np.where(found, slope, 1.0)
+    return np.where(found, root, np.nan), np.where(found, slope, 1.0), found
 
 
 def _approach_point(profile, p, scout, phi_s, level, scale, b):
