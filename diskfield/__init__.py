@@ -11,6 +11,9 @@ from .errors import (  # noqa: E402
 )
 from .records import read_compilation  # noqa: E402
 from .likelihood import build_model  # noqa: E402
+from .runs import fit, fit_model, load_comparison, load_fit  # noqa: E402
+from .comparison import compare  # noqa: E402
+from .evidence import nested_evidence  # noqa: E402
 
 __all__ = [
     "__version__",
@@ -20,4 +23,10 @@ __all__ = [
     "OptionError",
     "read_compilation",
     "build_model",
+    "fit",
+    "fit_model",
+    "compare",
+    "nested_evidence",
+    "load_fit",
+    "load_comparison",
 ]
