@@ -40,6 +40,6 @@ def comparison_figure(models, ln_z, ln_z_err, elpd_diff, elpd_diff_se, *,
                       fmt="s", color=OKABE_ITO[2], capsize=2)
         ax_e.set_xlabel(f"ΔELPD(LOO) vs {reference} (nats)")
         ax_z.set_yticks(y, list(models))
-        ax_z.set_ylabel("Model")
+        ax_z.set_ylabel("Model (name)")
         ax_z.margins(y=0.3)
     return fig

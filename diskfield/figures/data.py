@@ -248,10 +248,12 @@ def body_points_from_prior(table, reservoirs: dict) -> list[BodyPoint]:
 
 
 def _weighted_quantiles(x, w, q) -> np.ndarray:
-    order = np.argsort(x)
-    cdf = np.cumsum(w[order])
-    cdf /= cdf[-1]
-    return np.interp(q, cdf, x[order])
+    """Quantiles of a weighted sample, interpolating between weight midpoints (Hazen-type)."""
+    keep = w > 0
+    x, w = x[keep], w[keep]
+    order = np.argsort(x, kind="stable")
+    x, w = x[order], w[order] / w.sum()
+    return np.interp(q, np.cumsum(w) - 0.5 * w, x)
 
 
 def body_points_from_posterior(r_nodes, weights, names, reservoirs) -> list[BodyPoint]:

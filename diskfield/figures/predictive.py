@@ -88,7 +88,7 @@ def predictive_figure(records, observed_ln, is_limit, intervals, *, width_in: fl
                 label="observed")
         if lim.any():
             draw_upper_limits(ax, x[lim], obs[lim], label="upper limit")
-        ax.set(yscale="log", ylabel="Paleointensity (µT)", xlabel="Record")
+        ax.set(yscale="log", ylabel="Paleointensity (µT)", xlabel="Record (id)")
         ax.set_xticks(x, [str(r) for r in records], rotation=90)
         ax.legend(loc="best", ncols=2)
     return fig
