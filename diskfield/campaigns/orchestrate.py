@@ -7,16 +7,23 @@ analytic example, :mod:`diskfield.campaigns.disk` for the disk-field model).
 """
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import hashlib
 import json
+
+from ..errors import DiskfieldError
 
 from .calibration import SBCSettings, calibration_tasks
 from .calibration_report import summarise_calibration, write_calibration_outputs
 from .runner import RunReport, open_client, run_tasks
 from .store import ResultStore, to_jsonable
 
-__all__ = ["fingerprint", "run_campaign", "run_calibration"]
+__all__ = ["fingerprint", "run_campaign", "run_calibration", "run_forecast", "CampaignError"]
+
+
+class CampaignError(DiskfieldError, RuntimeError):
+    """A campaign stage that cannot continue (e.g. every fit of the current data failed)."""
 
 
 def _describe(obj):
@@ -110,3 +117,61 @@ def run_calibration(problem, out_dir, *, n_sims: int, seed: int,
     paths = write_calibration_outputs(summary, out_dir, model=model_label or "model",
                                       threshold=threshold, n_sims_requested=n_sims)
     return report, summary, paths
+
+
+def run_forecast(null, alternative, candidates, out_dir, *, n_draws: int, seed: int,
+                 sampler, evidence, n_keep: int = 200, threshold: float = 6.0,
+                 resume: bool = False, client=None, scheduler=None, workers=None,
+                 retries: int = 2, progress: bool = True):
+    """Forecast the verdict after each candidate measurement; writes the forecast outputs.
+
+    Parameters
+    ----------
+    null, alternative : DiskSpec
+        The compared models (e.g. smooth and ring) on the current compilation.
+    candidates : sequence of Candidate
+    out_dir : path
+    n_draws : int
+        Preposterior draws (simulate + refit) per candidate.
+    seed : int
+    sampler : SamplerSettings
+        emcee settings of every fit.
+    evidence : EvidenceSettings
+        Nested-sampling settings of every evidence.
+    n_keep : int
+        Posterior draws of the current fits kept as the predictive bank.
+    threshold : float
+        |2 ln B| of a decisive verdict.
+    resume : bool
+    client, scheduler, workers, retries, progress
+        Dask execution (see :func:`run_campaign`).
+
+    Returns
+    -------
+    (list of RunReport, summary dict, list of Path)
+    """
+    from .forecast import context_from_results, stage_one_tasks, stage_two_tasks
+    from .forecast_report import summarise_forecast, write_forecast_outputs
+
+    fp = fingerprint(null, alternative, tuple(candidates), sampler, evidence, n_keep)
+    store = ResultStore(out_dir, "forecast", fp, seed, resume=resume)
+    stage1 = stage_one_tasks(null, alternative, sampler, evidence, n_keep, seed)
+    with contextlib.ExitStack() as stack:
+        if client is None:
+            client = stack.enter_context(open_client(scheduler, workers))
+        kw = {"client": client, "retries": retries, "progress": progress}
+        reports = [run_campaign(stage1, store, desc="forecast-current", **kw)]
+        by_id = {r["task_id"]: r["result"] for r in store.results()}
+        missing = [t.task_id for t in stage1 if t.task_id not in by_id]
+        if missing:
+            raise CampaignError(f"{out_dir}: fits of the current data failed ({', '.join(missing)}); "
+                                "see failed/ for the errors")
+        ctx = context_from_results(null, alternative, by_id, sampler, evidence)
+        stage2 = stage_two_tasks(ctx, candidates, n_draws, seed)
+        reports.append(run_campaign(stage2, store, desc="forecast", **kw))
+    wanted = {t.task_id for t in stage1 + stage2}
+    results = [r for r in store.results() if r["task_id"] in wanted]
+    failures = [f for f in store.failures() if f["task_id"] in wanted]
+    summary = summarise_forecast(results, candidates, threshold, ctx)
+    paths = write_forecast_outputs(summary, out_dir, threshold=threshold, failures=failures)
+    return reports, summary, paths
