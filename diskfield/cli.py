@@ -18,7 +18,7 @@ from .errors import DiskfieldError
 __all__ = ["main", "COMMANDS"]
 
 #: Command modules under ``diskfield.commands``, in the order ``--help`` lists them.
-COMMANDS = ("check", "ages", "profiles", "fit", "compare", "report", "calibrate")
+COMMANDS = ("check", "ages", "profiles", "fit", "compare", "report", "calibrate", "forecast")
 
 
 class _Parser(argparse.ArgumentParser):
