@@ -212,3 +212,121 @@ def test_task_results_are_strict_json(client, tmp_path):
     text = next(store.tasks_dir.glob("*.json")).read_text()
     json.loads(text)  # raises on NaN/Infinity tokens
     assert "NaN" not in text
+
+
+# ----------------------------------------------------------------- disk-model campaigns
+DEMO = Path(__file__).resolve().parent.parent / "data_demo"
+SMALL = Path(__file__).resolve().parent / "data" / "small.csv"
+
+
+@pytest.fixture(scope="module")
+def demo_comp():
+    from diskfield.records import read_compilation
+
+    return read_compilation(DEMO / "demo_compilation.ecsv")
+
+
+def test_demo_candidates_read(demo_comp):
+    from diskfield.campaigns.candidates import read_candidates
+
+    cands = read_candidates(DEMO / "candidates_demo.ecsv", demo_comp, ("NC", "CC", "CC_distal"))
+    by_id = {c.candidate: c for c in cands}
+    assert len(cands) == 4
+    assert not by_id["Ystrelle-detections"].new_body
+    assert by_id["new-CC-thermal"].new_body and by_id["new-CC-thermal"].ln_err == 0.15
+    assert np.isnan(by_id["new-distal-IRM"].age) and by_id["new-NC-ARM"].age == 2.0
+
+
+def test_bad_candidates_name_row_and_column(demo_comp, tmp_path):
+    from diskfield.campaigns.candidates import read_candidates
+    from diskfield.errors import CompilationError
+
+    bad = tmp_path / "bad.csv"
+    bad.write_text("candidate,body,reservoir,age [Myr],age_err [Myr],method,ln_err,relative_err,"
+                   "n_records\n"
+                   "a,Vellmar,CC,,,thermal,0.2,,2\n"
+                   "b,,XX,,,thermal,0.2,,2\n"
+                   "c,Nova,NC,2.0,,laser,0.2,0.1,1.5\n"
+                   "a,Nova2,NC,,,,0.2,,3\n")
+    with pytest.raises(CompilationError) as info:
+        read_candidates(bad, demo_comp, ("NC", "CC", "CC_distal"))
+    lines = info.value.lines()
+    text = "\n".join(lines)
+    assert "row 1, record 'a', column 'reservoir'" in text and "'NC'" in text
+    assert "row 2, record 'b', column 'reservoir': got 'XX'" in text
+    assert "row 3, record 'c', column 'method': got 'laser'" in text
+    assert "row 3, record 'c', column 'age_err'" in text
+    assert "row 3, record 'c', column 'ln_err': give exactly one" in text
+    assert "row 3, record 'c', column 'n_records': got '1.5'" in text
+    assert "row 4, record 'a', column 'candidate': duplicate id" in text
+    assert all(line.startswith(str(bad)) for line in lines)
+
+
+def test_unknown_candidate_column_lists_valid(demo_comp, tmp_path):
+    from diskfield.campaigns.candidates import read_candidates
+    from diskfield.errors import CompilationError
+
+    bad = tmp_path / "bad.csv"
+    bad.write_text("candidate,reservoir,sigma,n_records\nx,NC,0.2,1\n")
+    with pytest.raises(CompilationError, match="column 'sigma': unknown column; valid: candidate"):
+        read_candidates(bad, demo_comp, ("NC",))
+
+
+def test_augmented_compilation_builds_a_model(demo_comp):
+    from diskfield.campaigns.candidates import Candidate, augment_compilation
+    from diskfield.likelihood import build_model
+
+    new = Candidate("n1", "Nova", "CC", True, 3.0, 0.5, "thermal", "TRM", 0.2, 3)
+    old = Candidate("o1", "Vellmar", "NC", False, np.nan, np.nan, "", "", 0.3, 2)
+    aug, idx = augment_compilation(demo_comp, new)
+    n = len(demo_comp.records)
+    assert list(idx) == [n, n + 1, n + 2] and len(aug.bodies) == len(demo_comp.bodies) + 1
+    assert aug.bodies[-1].record_indices == tuple(idx)
+    assert set(aug.records.body_index[idx]) == {len(demo_comp.bodies)}
+    aug2, idx2 = augment_compilation(demo_comp, old)
+    g = demo_comp.body_names.index("Vellmar")
+    assert aug2.bodies[g].record_indices[-2:] == tuple(idx2)
+    assert list(aug2.records.age_kind[idx2]) == ["default", "default"]
+    model = build_model(aug, profile="smooth")
+    assert model.n_bodies == len(demo_comp.bodies) + 1 and model.n_records == n + 3
+
+
+def _cli(argv):
+    from diskfield.cli import main
+
+    return main([str(a) for a in argv])
+
+
+@pytest.mark.slow
+def test_calibrate_cli_runs_and_resumes(client, tmp_path, capsys):
+    out = tmp_path / "cal"
+    argv = ["calibrate", SMALL, "--model", "smooth", "--sims", 4, "--verdict-sims", 0,
+            "--max-steps", 60, "--walkers", 8, "--starts", 1, "--draws", 9, "--quiet",
+            "--scheduler", client.scheduler.address, "--out", out, "--seed", 5]
+    assert _cli(argv) == 0
+    first = capsys.readouterr().out
+    assert "4 task(s) run now, 0 already finished, 0 failed" in first
+    for name in ("calibration.csv", "sbc_summary.csv", "rank_histograms.png", "coverage.pdf",
+                 "calibration.md", "manifest.json", "priors_used/02_disk.toml"):
+        assert (out / name).is_file(), name
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["seed"] == 5 and manifest["campaign"]["tasks"] == 4
+    assert _cli(argv) == 2
+    assert "--resume" in capsys.readouterr().err
+    assert _cli(argv + ["--resume"]) == 0
+    assert "0 task(s) run now, 4 already finished" in capsys.readouterr().out
+
+
+def test_campaign_cli_option_errors(tmp_path, capsys):
+    assert _cli(["calibrate", SMALL, "--model", "smooth", "--sims", 2, "--workers", 0,
+                 "--out", tmp_path / "x"]) == 2
+    assert "option '--workers': got 0" in capsys.readouterr().err
+    assert _cli(["calibrate", SMALL, "--model", "spiral", "--sims", 2,
+                 "--out", tmp_path / "y"]) == 2
+    assert "spiral" in capsys.readouterr().err
+    bad = tmp_path / "cands.csv"
+    bad.write_text("candidate,reservoir,ln_err,n_records\nx,Mars,0.2,0\n")
+    assert _cli(["forecast", SMALL, "--candidates", bad, "--out", tmp_path / "z"]) == 2
+    err = capsys.readouterr().err
+    assert "row 1, record 'x', column 'reservoir': got 'Mars'" in err
+    assert "column 'n_records': got '0'" in err

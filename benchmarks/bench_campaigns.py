@@ -1,0 +1,82 @@
+"""Campaign throughput on 1 and 2 Dask workers, and what a 1,000-simulation calibration costs.
+
+Runs the same SBC tasks (prior draw, simulation through the recording model, emcee fit) on a
+one-worker and on a two-worker loopback LocalCluster, in one run, and prints fits per minute,
+the scaling ratio (target >= 1.8x on 2 workers), the per-fit cost, and the projected wall time
+of a 1,000-simulation calibration on one machine and on clusters of N workers.
+
+Usage::
+
+    python benchmarks/bench_campaigns.py                       # demo compilation, smooth model
+    python benchmarks/bench_campaigns.py --model ring --max-steps 1000 --sims 8
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import tempfile
+import time
+
+from diskfield.campaigns.calibration import SBCSettings
+from diskfield.campaigns.disk import DiskSBCProblem, make_spec
+from diskfield.campaigns.orchestrate import run_calibration
+from diskfield.campaigns.runner import open_client
+from diskfield.resources import demo_dir
+from diskfield.sampling import SamplerSettings
+
+
+def _parse():
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--file", default=str(demo_dir() / "demo_compilation.ecsv"))
+    p.add_argument("--model", default="smooth")
+    p.add_argument("--sims", type=int, default=6, help="SBC fits per cluster size")
+    p.add_argument("--max-steps", type=int, default=300)
+    p.add_argument("--walkers", type=int, default=16)
+    p.add_argument("--starts", type=int, default=2)
+    p.add_argument("--seed", type=int, default=20261202)
+    return p.parse_args()
+
+
+def _timed_campaign(problem, n_sims, seed, workers):
+    """Wall time [s] of ``n_sims`` SBC tasks on a fresh cluster (start-up excluded)."""
+    with open_client(workers=workers) as client, tempfile.TemporaryDirectory() as out:
+        client.run(lambda: None)  # workers are up before the clock starts
+        start = time.perf_counter()
+        report, _, _ = run_calibration(problem, out, n_sims=n_sims, seed=seed,
+                                       settings=SBCSettings(n_draws=19), client=client,
+                                       progress=False)
+        wall = time.perf_counter() - start
+    if report.failed:
+        raise SystemExit(f"{len(report.failed)} benchmark task(s) failed: {report.failed[0]}")
+    return wall
+
+
+def main() -> None:
+    args = _parse()
+    spec = make_spec(args.file, args.model)
+    sampler = SamplerSettings(n_walkers=args.walkers, chunk=min(500, args.max_steps),
+                              max_steps=args.max_steps, n_starts=args.starts)
+    problem = DiskSBCProblem(spec, sampler)
+    load = os.getloadavg()[0]
+    t1 = _timed_campaign(problem, args.sims, args.seed, 1)
+    t2 = _timed_campaign(problem, args.sims, args.seed, 2)
+    rate1, rate2 = 60 * args.sims / t1, 60 * args.sims / t2
+    per_fit = t1 / args.sims
+    print(f"setting: {args.file} model={args.model} walkers={args.walkers} "
+          f"max_steps={args.max_steps} starts={args.starts} sims={args.sims}; "
+          f"cpus={os.cpu_count()}, load average at start {load:.2f}")
+    print(f"1 worker : {t1:8.1f} s  {rate1:7.2f} fits/min")
+    print(f"2 workers: {t2:8.1f} s  {rate2:7.2f} fits/min")
+    print(f"scaling ratio (2 vs 1 worker): {rate2 / rate1:.2f}x (target >= 1.8x)")
+    print(f"per-fit cost on one worker: {per_fit:.1f} s")
+    eff = min(1.0, (rate2 / rate1) / 2)
+    print("projected 1,000-simulation calibration (verdict simulations not included):")
+    print(f"  this machine, 2 workers : {1000 / rate2 / 60:8.2f} h")
+    for n in (8, 32, 128):
+        hours = 1000 * per_fit / (n * eff) / 3600
+        print(f"  cluster of {n:3d} workers: {hours:8.2f} h (at the measured 2-worker "
+              f"efficiency {eff:.2f})")
+
+
+if __name__ == "__main__":
+    main()
