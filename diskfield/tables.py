@@ -168,6 +168,11 @@ def _latex_cell(cell) -> str:
     return f"${cell.value}^{{+{cell.plus}}}_{{-{cell.minus}}}$"
 
 
+def _label(label: str) -> str:
+    """A LaTeX label key: characters other than letters, digits and ``:_-.`` become ``-``."""
+    return re.sub(r"[^A-Za-z0-9:_.\-]", "-", label)
+
+
 def _latex_header(col: Column) -> tuple[str, str]:
     head = col.latex if col.latex is not None else latex_escape(col.label)
     unit = f"({_LATEX_UNITS.get(col.unit, latex_escape(col.unit))})" if col.unit else ""
@@ -198,7 +203,7 @@ def to_latex(table: TextTable, style: str = "aastex") -> str:
 
 
 def _aastex(table, heads, body, align) -> str:
-    label = f"\\label{{{table.label}}}" if table.label else ""
+    label = f"\\label{{{_label(table.label)}}}" if table.label else ""
     lines = [f"\\begin{{deluxetable*}}{{{align}}}",
              f"\\tablecaption{{{latex_escape(table.caption)}{label}}}",
              "\\tablehead{" + " & ".join(f"\\colhead{{{h}}}" for h, _ in heads)
@@ -215,7 +220,7 @@ def _tabular(table, heads, body, align) -> str:
     if table.caption:
         lines.append(f"\\caption{{{latex_escape(table.caption)}}}")
     if table.label:
-        lines.append(f"\\label{{{table.label}}}")
+        lines.append(f"\\label{{{_label(table.label)}}}")
     lines += [f"\\begin{{tabular}}{{{align}}}", "\\hline",
               " & ".join(h for h, _ in heads) + r" \\"]
     if any(u for _, u in heads):

@@ -33,7 +33,7 @@ def assert_balanced(tex: str) -> None:
 
 def assert_escaped(tex: str) -> None:
     """Outside math, no unescaped _ % # ~ ^ remains (& is the column separator)."""
-    text = _strip_math(tex)
+    text = re.sub(r"\\label\{[^}]*\}", "", _strip_math(tex))  # label keys may hold _
     for char in "_%#":
         assert not re.search(rf"(?<!\\){re.escape(char)}", text), f"unescaped {char!r}"
     assert "~" not in text.replace(r"\textasciitilde{}", "")

@@ -1,0 +1,146 @@
+"""The report folder: built from saved runs without refitting, well formed, reproducible."""
+from __future__ import annotations
+
+import hashlib
+import re
+from html.parser import HTMLParser
+from pathlib import Path
+
+import pytest
+
+from diskfield.cli import main
+from diskfield.errors import DiskfieldError, OptionError
+from diskfield.report import build_report
+
+from _saved_run import make_saved_run
+from test_tables import assert_balanced, assert_escaped
+
+_FAST = {"dpi": 40, "n_draws": 20}
+
+
+class _Links(HTMLParser):
+    """Collects every src/href of an HTML page and checks tags are closed in order."""
+
+    _VOID = {"meta", "img", "br", "hr", "link", "input"}
+
+    def __init__(self):
+        super().__init__()
+        self.refs, self.stack, self.errors = [], [], []
+
+    def handle_starttag(self, tag, attrs):
+        self.refs += [v for k, v in attrs if k in ("src", "href")]
+        if tag not in self._VOID:
+            self.stack.append(tag)
+
+    def handle_endtag(self, tag):
+        if not self.stack or self.stack.pop() != tag:
+            self.errors.append(tag)
+
+
+def _parse(html_path: Path) -> _Links:
+    parser = _Links()
+    parser.feed(html_path.read_text(encoding="utf-8"))
+    parser.close()
+    return parser
+
+
+def _digest(folder: Path) -> dict:
+    return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+@pytest.fixture(scope="module")
+def comparison_run(tmp_path_factory):
+    return make_saved_run(tmp_path_factory.mktemp("report") / "compare")
+
+
+@pytest.fixture(scope="module")
+def comparison_report(comparison_run):
+    return build_report(comparison_run, **_FAST)
+
+
+def test_report_folder_is_complete_and_self_contained(comparison_report):
+    out = comparison_report.parent
+    assert comparison_report.name == "report.html" and out.name == "report"
+    parser = _parse(comparison_report)
+    assert not parser.errors and not parser.stack
+    assert parser.refs, "the page references its figures and tables"
+    for ref in parser.refs:
+        assert "://" not in ref and not ref.startswith("/"), f"external reference {ref}"
+        assert (out / ref).is_file(), f"missing {ref}"
+    images = [r for r in parser.refs if r.endswith(".png")]
+    assert {"figures/field_profile.png", "figures/field_time.png", "figures/comparison.png",
+            "figures/ring_parameters_ring.png"} <= set(images)
+    for png in images:
+        assert (out / png).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+        assert (out / png).with_suffix(".pdf").read_bytes()[:5] == b"%PDF-"
+
+
+def test_markdown_references_exist(comparison_report):
+    out = comparison_report.parent
+    md = (out / "report.md").read_text(encoding="utf-8")
+    for ref in re.findall(r"\]\(([^)]+)\)", md):
+        assert (out / ref).is_file(), f"missing {ref}"
+
+
+def test_report_content(comparison_report):
+    md = (comparison_report.parent / "report.md").read_text(encoding="utf-8")
+    for heading in ("## Verdict", "## Posterior summaries", "## Field profile",
+                    "## Ring parameters", "## Posterior predictive check",
+                    "## Prior sensitivity", "## Convergence diagnostics",
+                    "## Assumptions and cautions", "## Compilation as fitted", "## Provenance"):
+        assert heading in md
+    assert "positively favoured" in md                      # the saved verdict
+    assert "Bayes factors depend on the priors" in md
+    assert "steady relative to the parent body" in md       # field-direction assumption
+    assert "authors' judgement" in md
+    assert "G-2 (PB-Gamma): excluded: overprint" in md      # exclusion with its note
+    assert "ring*" in md and "did NOT converge" in md       # unconverged fit marked
+    assert "chain shorter than 50 tau" in md                # its flag
+    assert '"seed": 20260101' in md                         # the manifest
+
+
+def test_report_tables_are_well_formed(comparison_report):
+    tables = comparison_report.parent / "tables"
+    names = {p.name for p in tables.iterdir()}
+    for stem in ("comparison", "posterior_summary_smooth", "posterior_summary_ring",
+                 "compilation", "convergence", "prior_sensitivity"):
+        assert {f"{stem}.tex", f"{stem}_aastex.tex", f"{stem}.md", f"{stem}.csv"} <= names
+    for tex in tables.glob("*.tex"):
+        text = tex.read_text(encoding="utf-8")
+        assert_balanced(text)
+        assert_escaped(text)
+
+
+def test_report_rebuilds_identically(comparison_run, comparison_report, tmp_path):
+    again = build_report(comparison_run, tmp_path / "again", **_FAST)
+    assert _digest(again.parent) == _digest(comparison_report.parent)
+
+
+def test_bad_folders_are_clear_errors(tmp_path, capsys):
+    with pytest.raises(OptionError, match="fit.json"):
+        build_report(tmp_path)
+    bad = tmp_path / "broken"
+    bad.mkdir()
+    (bad / "fit.json").write_text("{not json")
+    with pytest.raises(DiskfieldError, match=r"fit\.json: not valid JSON"):
+        build_report(bad)
+    assert main(["report", str(tmp_path / "absent")]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "option 'DIR'" in err[0]
+    assert main(["report", str(bad), "--dpi", "3"]) == 2
+    assert "--dpi" in capsys.readouterr().err
+
+
+def test_cli_single_fit_folder_without_model(tmp_path, capsys):
+    run = make_saved_run(tmp_path / "fit", kind="fit")
+    out = tmp_path / "cli_report"
+    assert main(["report", str(run), "--out", str(out), "--dpi", "40", "--draws", "20",
+                 "--no-model"]) == 0
+    assert f"report: {out / 'report.html'}" in capsys.readouterr().out
+    md = (out / "report.md").read_text(encoding="utf-8")
+    assert "## Verdict" not in md and "no model comparison" in md
+    assert "distance *prior*" in md          # the caption says where distances came from
+    assert "model rebuilding switched off" in md
+    parser = _parse(out / "report.html")
+    assert parser.refs and all((out / ref).is_file() for ref in parser.refs)
