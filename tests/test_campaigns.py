@@ -131,7 +131,7 @@ def test_same_seed_same_results_on_one_and_two_workers(client, tmp_path):
 @pytest.mark.slow
 def test_sbc_ranks_uniform_for_correct_model(client, tmp_path):
     problem = ConjugateGaussian(n_obs=8, sigma=1.0, prior_sd=1.0)
-    _, summary, paths = run_calibration(problem, tmp_path, n_sims=150,
+    _, summary, paths = run_calibration(problem, tmp_path, n_sims=100,
                                         seed=seed_for("sbc-correct"), client=client,
                                         progress=False)
     row = summary.sbc_rows[0]
@@ -148,7 +148,7 @@ def test_sbc_ranks_non_uniform_for_misspecified_model(client, tmp_path):
     # Data simulated with twice the noise the fit assumes: over-confident posteriors, U-shaped
     # ranks (Talts et al. 2018, arXiv:1804.06788, their Fig. 3 shows the pattern).
     problem = ConjugateGaussian(n_obs=8, sigma=1.0, prior_sd=1.0, noise_scale=2.0)
-    _, summary, _ = run_calibration(problem, tmp_path, n_sims=150,
+    _, summary, _ = run_calibration(problem, tmp_path, n_sims=100,
                                     seed=seed_for("sbc-misspecified"), client=client,
                                     progress=False)
     row = summary.sbc_rows[0]
@@ -163,7 +163,7 @@ def test_verdict_false_positive_rate_matches_analytic(client, tmp_path):
     problem = ConjugateGaussian(n_obs=8, sigma=1.0, prior_sd=1.0)
     threshold = 2.0
     _, summary, _ = run_calibration(problem, tmp_path, n_sims=0, seed=seed_for("verdict"),
-                                    verdict_problem=problem, n_verdict=200, threshold=threshold,
+                                    verdict_problem=problem, n_verdict=120, threshold=threshold,
                                     client=client, progress=False)
     rates = {r["rate"]: r for r in summary.verdict_rows}
     # Derived from the conjugate evidences: under the null z^2 = n ybar^2 / sigma^2 ~ chi2(1)

@@ -105,8 +105,8 @@ def _figure(summary: dict, threshold: float, stem: Path) -> list[Path]:
     ax.axvline(summary["current_two_ln_b"], color="0.5", lw=0.8, ls=":")
     ax.set_yticks(range(len(rows)), [f"{r['rank']}. {r['candidate']}" for r in rows])
     ax.invert_yaxis()
-    ax.set_xlabel(f"2 ln B ({summary['models'][1]} vs {summary['models'][0]}) after the "
-                  "candidate")
+    ax.set_xlabel(f"2 ln B, {summary['models'][1]} vs {summary['models'][0]}")
+    ax.set_title("after each candidate (dotted: now; dashed: decisive)")
     return save_figure(fig, stem, dpi=150)
 
 

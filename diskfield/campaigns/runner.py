@@ -111,7 +111,7 @@ def open_client(scheduler: str | None = None, workers: int | None = None):
         ``DASK_SCHEDULER_ADDRESS`` environment variable; if neither, a local cluster.
     workers : int, optional
         Worker processes of the local cluster (one thread each); default: the CPU count.
-        Ignored (with a check) when connecting to an existing cluster.
+        Not used when connecting to an existing cluster (its size is the cluster's).
     """
     from distributed import Client, LocalCluster
 
