@@ -18,7 +18,8 @@ from .errors import DiskfieldError
 __all__ = ["main", "COMMANDS"]
 
 #: Command modules under ``diskfield.commands``, in the order ``--help`` lists them.
-COMMANDS = ("check", "ages", "profiles", "fit", "compare", "report", "calibrate", "forecast")
+COMMANDS = ("check", "ages", "profiles", "fit", "compare", "report", "calibrate", "forecast",
+            "demo")
 
 
 class _Parser(argparse.ArgumentParser):
