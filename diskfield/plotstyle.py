@@ -136,6 +136,9 @@ def draw_upper_limits(ax, x, y, *, marker_color="0.2", drop: float = 0.5, label=
         Legend label (given once).
     """
     x, y = np.atleast_1d(np.asarray(x, float)), np.atleast_1d(np.asarray(y, float))
+    # an invisible line at the arrow tips makes autoscaling keep the whole arrow in view
+    # (an annotation whose tip falls outside the axes is not drawn at all)
+    ax.plot(x, y * drop, linestyle="none", marker="none")
     for xi, yi in zip(x, y):
         ax.annotate("", xy=(xi, yi * drop), xytext=(xi, yi),
                     arrowprops={"arrowstyle": "-|>", "color": marker_color, "lw": 0.8,

@@ -26,43 +26,63 @@ def _draw_bands(ax, bands: dict[str, Bands]) -> None:
         ax.plot(b.x, b.q[2], color=color, ls=model_linestyle(i), label=f"{model} (median)")
 
 
-def _draw_records(ax, records, x_of, xerr_of, reservoirs) -> None:
-    """Records at x positions from ``x_of(record)`` with implied-field bars."""
-    labelled = set()
+def _draw_records(ax, records, x_of, reservoirs, xerr_of=None) -> None:
+    """Records at x positions from ``x_of(record)`` with their implied-field bars."""
     for rec in records:
         x, (lo, mid, hi) = x_of(rec), rec.implied_ut
         if not np.isfinite(x):
             continue
         marker = reservoir_marker(rec.reservoir, reservoirs)
-        label = None if rec.reservoir in labelled else rec.reservoir
-        labelled.add(rec.reservoir)
-        xerr = xerr_of(rec)
         if rec.is_limit:
             draw_upper_limits(ax, [x], [mid])
-            ax.plot([x], [mid], ls="none", marker=marker, mfc="white", mec="0.2", label=label)
+            ax.plot([x], [mid], ls="none", marker=marker, mfc="white", mec="0.2",
+                    label=rec.reservoir)
             continue
+        xerr = xerr_of(rec) if xerr_of else None
         ax.errorbar([x], [mid], yerr=[[mid - lo], [hi - mid]], xerr=xerr, fmt=marker,
-                    color="0.2", mfc="white", ms=4, elinewidth=0.7, capsize=0, label=label)
+                    color="0.2", mfc="white", ms=4, elinewidth=0.6, capsize=0,
+                    label=rec.reservoir)
 
 
-def _legend(axes) -> None:
-    """One legend (models and reservoirs of every panel) on the first panel."""
+def _fanned_distance(records, by_body, spread: float = 0.04):
+    """x position of each record: its body's median distance, records of one body fanned
+    out by a few per cent in log r so that their bars do not overlap (a display offset)."""
+    groups: dict[str, list] = {}
+    for rec in records:
+        groups.setdefault(rec.body, []).append(rec.record)
+    x = {}
+    for body, ids in groups.items():
+        r0 = by_body[body].distance_au[1] if body in by_body else np.nan
+        for k, rid in enumerate(ids):
+            x[rid] = r0 * np.exp(spread * (k - 0.5 * (len(ids) - 1)) / max(len(ids), 1) ** 0.5)
+    return lambda rec: x[rec.record]
+
+
+def _draw_body_distances(ax, records, by_body) -> None:
+    """One horizontal bar per body: its distance's 16th–84th percentiles [AU], drawn at the
+    geometric mean of its records' implied fields."""
+    for body in dict.fromkeys(r.body for r in records):
+        if body not in by_body:
+            continue
+        lo, mid, hi = by_body[body].distance_au
+        y = np.exp(np.mean([np.log(r.implied_ut[1]) for r in records if r.body == body]))
+        ax.plot([lo, hi], [y, y], color="0.45", lw=1.6, alpha=0.6, solid_capstyle="butt",
+                label="body distance (68%)")
+
+
+def _legend(fig, axes) -> None:
+    """One legend (models, reservoirs, distance bars of every panel) above the panels."""
     handles = {}
     for ax in axes:
         for h, lab in zip(*ax.get_legend_handles_labels()):
-            handles.setdefault(lab, h)
-    axes[0].legend(handles.values(), handles.keys(), loc="best", ncols=2)
-
-
-def _body_xerr(body: BodyPoint | None):
-    if body is None:
-        return None
-    lo, mid, hi = body.distance_au
-    return [[mid - lo], [hi - mid]]
+            if not lab.startswith("_"):
+                handles.setdefault(lab, h)
+    fig.legend(handles.values(), handles.keys(), loc="outside upper center",
+               ncols=min(len(handles), 4))
 
 
 def field_profile_figure(bands_by_epoch: dict[float, dict[str, Bands]], bodies: list[BodyPoint],
-                         records: list[RecordPoint], *, width_in: float = 3.4):
+                         records: list[RecordPoint], *, width_in: float = 4.5):
     """B(r) at chosen epochs: bands per model, bodies at their distances, records' fields.
 
     Parameters
@@ -73,7 +93,8 @@ def field_profile_figure(bands_by_epoch: dict[float, dict[str, Bands]], bodies: 
         Body distances [AU] (posterior or prior; the caption must say which).
     records : list of RecordPoint
         Each record is drawn in the panel whose epoch is nearest its central age, at its
-        body's median distance with the distance spread as a horizontal bar.
+        body's median distance (records of one body fanned out by a few per cent in r for
+        legibility); each body's distance spread is one grey horizontal bar.
     width_in : float
         Figure width [inch].
 
@@ -90,19 +111,18 @@ def field_profile_figure(bands_by_epoch: dict[float, dict[str, Bands]], bodies: 
         for k, (ax, epoch) in enumerate(zip(axes[:, 0], epochs)):
             _draw_bands(ax, bands_by_epoch[epoch])
             mine = [r for r in records if nearest_index(r.age_myr[1], epochs) == k]
-            _draw_records(ax, mine,
-                          lambda r: by_body[r.body].distance_au[1] if r.body in by_body else np.nan,
-                          lambda r: _body_xerr(by_body.get(r.body)), reservoirs)
+            _draw_body_distances(ax, mine, by_body)
+            _draw_records(ax, mine, _fanned_distance(mine, by_body), reservoirs)
             ax.set(xscale="log", yscale="log", ylabel="Field B (µT)")
             ax.set_title(f"t = {epoch:g} Myr after CAI formation", loc="left")
         axes[-1, 0].set_xlabel("Heliocentric distance r (AU)")
-        _legend(axes[:, 0])
+        _legend(fig, axes[:, 0])
     return fig
 
 
 def field_time_figure(bands_by_distance: dict[float, dict[str, Bands]],
                       bodies: list[BodyPoint], records: list[RecordPoint], *,
-                      width_in: float = 3.4):
+                      width_in: float = 4.5):
     """B(t) at chosen distances with the records placed at their ages.
 
     Parameters
@@ -130,11 +150,11 @@ def field_time_figure(bands_by_distance: dict[float, dict[str, Bands]],
             _draw_bands(ax, bands_by_distance[dist])
             mine = [r for r in records if r.body in by_body
                     and nearest_index(by_body[r.body].distance_au[1], distances) == k]
-            _draw_records(ax, mine, lambda r: r.age_myr[1],
-                          lambda r: [[r.age_myr[1] - r.age_myr[0]], [r.age_myr[2] - r.age_myr[1]]],
-                          reservoirs)
+            _draw_records(ax, mine, lambda r: r.age_myr[1], reservoirs,
+                          lambda r: [[r.age_myr[1] - r.age_myr[0]],
+                                     [r.age_myr[2] - r.age_myr[1]]])
             ax.set(yscale="log", ylabel="Field B (µT)")
             ax.set_title(f"r = {dist:g} AU", loc="left")
         axes[-1, 0].set_xlabel("Time after CAI formation t (Myr)")
-        _legend(axes[:, 0])
+        _legend(fig, axes[:, 0])
     return fig

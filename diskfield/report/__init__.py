@@ -24,21 +24,14 @@ __all__ = ["build_report", "attach_models", "report_sections"]
 
 
 def _rebuild(run: SavedRunData, fit) -> tuple[object, str]:
-    """Rebuild one fit's Model from the saved compilation and priors (or say why not)."""
+    """Rebuild one fit's Model through :meth:`diskfield.runs.SavedFit.model` (or say why not)."""
     try:
-        from ..likelihood import build_model
-        from ..records import read_compilation
+        from ..runs import SavedFit
     except ImportError as err:
-        return None, f"the likelihood module is not available: {err}"
-    source = fit.path / "compilation.ecsv"
-    if not source.is_file():
-        source = run.path / "compilation.ecsv"
+        return None, f"the fitting modules are not available: {err}"
     try:
-        comp = read_compilation(source)
-        model = build_model(comp, profile=fit.fit.get("profile", fit.name),
-                            envelope=fit.fit.get("envelope", "steady"),
-                            spin=fit.fit.get("spin", "body"), priors=run.prior_files or None)
-    except (DiskfieldError, ValueError, KeyError, NotImplementedError) as err:
+        model = SavedFit(fit.path, fit.idata, fit.fit).model()
+    except (DiskfieldError, ValueError, KeyError, NotImplementedError, OSError) as err:
         return None, f"{type(err).__name__}: {str(err).splitlines()[0]}"
     saved = list(fit.fit.get("parameter_names", []))
     if saved and list(model.parameter_names) != saved:
@@ -97,8 +90,16 @@ def report_sections(ctx: ReportContext, run: SavedRunData) -> list:
 
 def _notes(run: SavedRunData) -> list:
     notes = [f"Model {n} not rebuilt: {f.model_note}" for n, f in run.fits.items() if f.model_note]
-    notes += [f"Missing from the run folder: {m}" for m in run.missing]
+    notes += [f"Missing from the run folder: {_relative(m, run.path)}" for m in run.missing]
     return [Items(tuple(notes))] if notes else []
+
+
+def _relative(path, root: Path) -> str:
+    """``path`` relative to ``root`` when inside it (reports do not depend on where runs live)."""
+    try:
+        return str(Path(path).relative_to(root))
+    except ValueError:
+        return str(path)
 
 
 def build_report(run_dir, out_dir=None, *, dpi: int = 300, n_draws: int = 200,

@@ -1,9 +1,10 @@
 """Read a saved fit or comparison folder (the team's saved-run schema) for the report.
 
-A minimal reader of its own until :mod:`diskfield.runs` is available; it loads everything
-eagerly and never refits. The Model is rebuilt (for posterior distances and predictive checks)
-only when the likelihood can be built from ``compilation.ecsv`` and ``priors_used/``; when it
-cannot, the reason is kept and printed in the report.
+Beside what :mod:`diskfield.runs` loads (posterior, fit.json, evidence, manifest) the report
+needs the summary and field-profile CSVs, verdict.md, the compilation and the prior files, and
+must tolerate optional files being absent (each absence is listed in the report). Everything is
+loaded eagerly; nothing is refitted. The Model is rebuilt by :meth:`diskfield.runs.SavedFit.model`
+(see :func:`diskfield.report.attach_models`).
 """
 from __future__ import annotations
 
