@@ -88,6 +88,43 @@ def test_resume_skips_finished_tasks(client, tmp_path):
     assert {r["task_id"]: r["result"] for r in resumed.results()} == full
 
 
+_KILL_SCRIPT = """
+import sys
+from diskfield.campaigns.calibration import SBCSettings
+from diskfield.campaigns.orchestrate import run_calibration
+from diskfield.campaigns.toy import ConjugateGaussian
+run_calibration(ConjugateGaussian(delay_s=0.25), sys.argv[2], n_sims=int(sys.argv[3]),
+                seed=int(sys.argv[4]), settings=SBCSettings(n_draws=19),
+                scheduler=sys.argv[1], progress=False)
+"""
+
+
+def test_killed_campaign_resumes_where_it_stopped(client, tmp_path):
+    import signal
+    import subprocess
+    import time
+
+    out, n, seed = tmp_path / "killed", 20, seed_for("kill-resume")
+    proc = subprocess.Popen([sys.executable, "-c", _KILL_SCRIPT, client.scheduler.address,
+                             str(out), str(n), str(seed)])
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline and len(list(out.glob("tasks/*.json"))) < 5:
+        time.sleep(0.05)
+    proc.send_signal(signal.SIGKILL)
+    proc.wait()
+    done_before = len(list(out.glob("tasks/*.json")))
+    assert 5 <= done_before < n
+    problem = ConjugateGaussian(delay_s=0.25)
+    report, resumed, _ = run_calibration(problem, out, n_sims=n, seed=seed,
+                                         settings=SBCSettings(n_draws=19), resume=True,
+                                         client=client, progress=False)
+    assert report.n_skipped >= done_before and report.n_run == n - report.n_skipped
+    _, fresh, _ = run_calibration(problem, tmp_path / "fresh", n_sims=n, seed=seed,
+                                  settings=SBCSettings(n_draws=19), client=client,
+                                  progress=False)
+    assert np.array_equal(resumed.ranks, fresh.ranks)
+
+
 def test_store_refuses_silent_overwrite_and_mismatched_resume(tmp_path):
     ResultStore(tmp_path, "calibration", "abc", 1)
     with pytest.raises(CheckpointError, match="--resume"):
@@ -330,3 +367,33 @@ def test_campaign_cli_option_errors(tmp_path, capsys):
     err = capsys.readouterr().err
     assert "row 1, record 'x', column 'reservoir': got 'Mars'" in err
     assert "column 'n_records': got '0'" in err
+
+
+@pytest.mark.slow
+def test_forecast_cli_end_to_end(client, tmp_path, capsys):
+    import csv
+
+    cands = tmp_path / "cands.csv"
+    cands.write_text("candidate,body,reservoir,age [Myr],age_err [Myr],method,remanence,ln_err,"
+                     "relative_err,n_records\n"
+                     "farCC,Farrow,CC,3.0,0.5,thermal,TRM,0.1,,3\n"
+                     "moreKS,Kessarine,,,,ARM,,,0.3,1\n")
+    out = tmp_path / "fc"
+    argv = ["forecast", SMALL, "--candidates", cands, "--draws", 1, "--max-steps", 40,
+            "--walkers", 12, "--starts", 1, "--nlive", 20, "--dlogz", 2.0, "--threshold", 2,
+            "--quiet", "--scheduler", client.scheduler.address, "--out", out, "--seed", 3]
+    assert _cli(argv) == 0
+    assert "ranked by P(|2 ln B| > 2)" in capsys.readouterr().out
+    with open(out / "forecast.csv") as fh:
+        rows = list(csv.DictReader(fh))
+    with open(out / "forecast_draws.csv") as fh:
+        draws = list(csv.DictReader(fh))
+    assert [r["rank"] for r in rows] == ["1", "2"] and len(draws) == 2
+    for row in rows:
+        b = [float(d["two_ln_bayes_factor"]) for d in draws if d["candidate"] == row["candidate"]]
+        assert float(row["p_decisive"]) == pytest.approx(np.mean(np.abs(b) > 2))
+    assert float(rows[0]["p_decisive"]) >= float(rows[1]["p_decisive"])
+    for name in ("forecast.md", "forecast.png", "manifest.json", "candidates.csv"):
+        assert (out / name).is_file(), name
+    assert "Ranking criterion: probability of a decisive verdict" in (out / "forecast.md").read_text()
+    assert _cli(argv + ["--resume"]) == 0

@@ -11,6 +11,7 @@ machinery use it; it has nothing to do with disks.
 """
 from __future__ import annotations
 
+import time
 from dataclasses import dataclass
 
 import numpy as np
@@ -32,6 +33,8 @@ class ConjugateGaussian:
         Prior of ``mu`` (data units).
     noise_scale : float
         Simulation noise is ``noise_scale * sigma``; 1 is the correct model.
+    delay_s : float
+        Seconds each "fit" waits, to stand in for a real fit's cost (tests of interruption).
     """
 
     n_obs: int = 8
@@ -39,6 +42,7 @@ class ConjugateGaussian:
     prior_mean: float = 0.0
     prior_sd: float = 1.0
     noise_scale: float = 1.0
+    delay_s: float = 0.0
 
     parameter_names = ("mu",)
     model_names = ("fixed_mean", "free_mean")
@@ -53,6 +57,8 @@ class ConjugateGaussian:
 
     def posterior_draws(self, data: np.ndarray, rng: np.random.Generator, n_draws: int):
         """Independent exact posterior draws (n_draws, 1) and an empty diagnostics dict."""
+        if self.delay_s > 0:
+            time.sleep(self.delay_s)
         precision = 1.0 / self.prior_sd**2 + data.size / self.sigma**2
         mean = (self.prior_mean / self.prior_sd**2 + data.sum() / self.sigma**2) / precision
         draws = mean + rng.standard_normal((n_draws, 1)) / np.sqrt(precision)
