@@ -284,7 +284,8 @@ def _write_comparison(folder: Path, models) -> None:
     verdict = {"reference_model": "smooth",
                "models": {"ring": {"two_ln_bayes_factor": 5.0, "category": "positive",
                                    "delta_elpd": 1.0, "delta_elpd_se": 0.8, "agree": True,
-                                   "decisive": False}},
+                                   "decisive": False,
+                                   "sentence": "ring vs smooth: positive, not decisive."}},
                "sentence": "The ring model is positively favoured over the smooth disk."}
     (folder / "verdict.json").write_text(json.dumps(verdict, indent=1))
     sens = [{"model": "ring", "ring_prior_scale": s, "ln_bayes_factor": 2.5 - np.log(s),

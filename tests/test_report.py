@@ -90,7 +90,9 @@ def test_report_content(comparison_report):
                     "## Prior sensitivity", "## Convergence diagnostics",
                     "## Assumptions and cautions", "## Compilation as fitted", "## Provenance"):
         assert heading in md
-    assert "positively favoured" in md                      # the saved verdict
+    assert "positively favoured over the smooth disk" in md  # the saved verdict
+    assert "ring vs smooth: positive, not decisive." in md
+    assert (comparison_report.parent / "verdict.md").is_file()
     assert "Bayes factors depend on the priors" in md
     assert "steady relative to the parent body" in md       # field-direction assumption
     assert "authors' judgement" in md

@@ -71,7 +71,7 @@ def report_sections(ctx: ReportContext, run: SavedRunData) -> list:
     diffs = elpd_differences(run, ref)
     sections = []
     if run.kind == "comparison":
-        sections.append(Section("Verdict", tuple(verdict_blocks(run, ref, diffs)
+        sections.append(Section("Verdict", tuple(verdict_blocks(ctx, run, ref, diffs)
                                                  + comparison_blocks(ctx, run, diffs, ref))))
     else:
         sections.append(Section("Fit", (Para(f"A single fit of model {ref}; no model "
@@ -134,6 +134,7 @@ def build_report(run_dir, out_dir=None, *, dpi: int = 300, n_draws: int = 200,
     out = Path(out_dir) if out_dir is not None else run.path / "report"
     for sub in ("figures", "tables"):
         shutil.rmtree(out / sub, ignore_errors=True)
+    out.mkdir(parents=True, exist_ok=True)
     ctx = ReportContext(out, dpi=dpi, n_draws=n_draws)
     sections = report_sections(ctx, run)
     title = f"diskfield report: {run.path.name}"

@@ -10,8 +10,8 @@ from dataclasses import dataclass, field
 
 from ..tables import Measure, TextTable, to_markdown
 
-__all__ = ["Para", "Items", "Pre", "Figure", "TableBlock", "Section", "to_markdown_page",
-           "to_html_page"]
+__all__ = ["Para", "Items", "Pre", "Links", "Figure", "TableBlock", "Section",
+           "to_markdown_page", "to_html_page"]
 
 
 @dataclass(frozen=True)
@@ -33,6 +33,14 @@ class Pre:
     """Preformatted text (e.g. JSON)."""
 
     text: str
+
+
+@dataclass(frozen=True)
+class Links:
+    """A line of links to files inside the report folder (relative paths)."""
+
+    label: str
+    files: tuple
 
 
 @dataclass(frozen=True)
@@ -67,6 +75,8 @@ def _md_block(block) -> str:
         return "\n".join(f"- {item}" for item in block.items)
     if isinstance(block, Pre):
         return f"```\n{block.text}\n```"
+    if isinstance(block, Links):
+        return f"{block.label}: " + ", ".join(f"[{f}]({f})" for f in block.files)
     if isinstance(block, Figure):
         return (f"![{block.caption[:60]}]({block.png})\n\n*{block.caption}* "
                 f"(vector: [{block.pdf}]({block.pdf}))")
@@ -128,6 +138,9 @@ def _html_block(block) -> str:
         return "<ul>" + "".join(f"<li>{e(str(i))}</li>" for i in block.items) + "</ul>"
     if isinstance(block, Pre):
         return f"<pre>{e(block.text)}</pre>"
+    if isinstance(block, Links):
+        links = ", ".join(f"<a href=\"{e(f)}\">{e(f)}</a>" for f in block.files)
+        return f"<p>{e(block.label)}: {links}</p>"
     if isinstance(block, Figure):
         return (f"<figure><img src=\"{e(block.png)}\" alt=\"{e(block.caption[:80])}\">"
                 f"<figcaption>{e(block.caption)} <a href=\"{e(block.pdf)}\">PDF</a>"

@@ -8,7 +8,7 @@ import math
 import numpy as np
 
 from ..tables import Column, TextTable, measure
-from .render import Items, Para, Pre
+from .render import Items, Links, Para, Pre
 
 __all__ = ["verdict_blocks", "sensitivity_blocks", "convergence_table", "convergence_blocks",
            "assumption_blocks", "exclusion_blocks", "manifest_blocks", "CAUTION"]
@@ -26,18 +26,27 @@ _SPIN_TEXT = {
 }
 
 
-def verdict_blocks(run, ref: str, diffs: dict) -> list:
-    """The verdict text of the comparison, with the ΔELPD agreement in numbers."""
+def verdict_blocks(ctx, run, ref: str, diffs: dict) -> list:
+    """The verdict (verdict.json sentences, verdict.md copied beside the report), with the
+    ΔELPD of each model recomputed from the saved per-body log-likelihoods."""
     blocks = []
-    if run.verdict_text:
-        blocks.append(Para(run.verdict_text))
-    sentence = run.verdict.get("sentence") or run.verdict.get("plain_sentence")
-    if sentence and sentence not in run.verdict_text:
+    sentence = run.verdict.get("sentence")
+    if sentence:
         blocks.append(Para(str(sentence)))
+    per_model = [str(v["sentence"]) for v in (run.verdict.get("models") or {}).values()
+                 if isinstance(v, dict) and v.get("sentence")]
+    if per_model:
+        blocks.append(Items(tuple(per_model)))
+    if run.verdict_text:
+        if not blocks:  # no verdict.json: show the Markdown verdict as it was written
+            blocks.append(Pre(run.verdict_text))
+        (ctx.out_dir / "verdict.md").write_text(run.verdict_text + "\n", encoding="utf-8")
+        blocks.append(Links("Full verdict of the comparison", ("verdict.md",)))
     if not blocks:
         blocks.append(Para("No verdict file (verdict.md / verdict.json) in this run."))
     items = [f"{m}: ΔELPD(LOO) vs {ref} = {d['elpd_diff']:.2f} ± {d['elpd_diff_se']:.2f} "
-             f"(max Pareto k {d['pareto_k_max']:.2f})" for m, d in diffs.items() if m != ref]
+             f"(max Pareto k {d['pareto_k_max']:.2f}), from the saved per-body "
+             "log-likelihoods" for m, d in diffs.items() if m != ref]
     if items:
         blocks.append(Items(tuple(items)))
     return blocks
