@@ -2,16 +2,17 @@
 
 A candidates file (ECSV, or CSV with ``name [unit]`` headers) has one row per candidate:
 
-| column | required | meaning |
-|---|---|---|
-| ``candidate`` | yes | unique id |
-| ``body`` | one of body/reservoir | an existing body (new records share its distance and spin) or a new body's name |
-| ``reservoir`` | one of body/reservoir | reservoir of a new body (``NC``, ``CC``, ... as in the prior files) |
-| ``age``, ``age_err`` | no | expected age, Myr after CAI formation (Gaussian); absent: the reservoir's window |
-| ``method`` | no | ``ARM``, ``IRM``, ``thermal``, ``other`` (blank: no calibration term) |
-| ``remanence`` | no | ``TRM``, ``CRM``, ``unknown`` (blank: no term) |
-| ``ln_err`` or ``relative_err`` | exactly one | expected 1-sigma of ln(paleointensity) or relative error (equal to first order) |
-| ``n_records`` | yes | number of new records (integer >= 1) |
+* ``candidate`` (required): unique id.
+* ``body`` and/or ``reservoir`` (at least one): an existing body (in the refit its new records
+  share the body's distance and spin) or a new body's name; a new body needs its reservoir
+  (``NC``, ``CC``, ... as defined in the prior files).
+* ``age``, ``age_err`` (optional, together): expected age, Myr after CAI formation (Gaussian);
+  absent: the reservoir's default window.
+* ``method`` (optional): ``ARM``, ``IRM``, ``thermal``, ``other``; blank: no calibration term.
+* ``remanence`` (optional): ``TRM``, ``CRM``, ``unknown``; blank: no term.
+* ``ln_err`` or ``relative_err`` (exactly one): expected 1-sigma of ln(paleointensity), or the
+  relative error (equal to first order).
+* ``n_records`` (required): number of new records, an integer >= 1.
 """
 from __future__ import annotations
 
@@ -129,10 +130,10 @@ class _Checker:
         except (TypeError, ValueError):
             self.bad(row, cand, column, f"got {str(value)!r}; must be a number")
             return None
-        ok = math.isfinite(x) and (x > 0 if positive else True) and (x == int(x) if integer
-                                                                      and math.isfinite(x) else True)
+        ok = math.isfinite(x) and (x > 0 or not positive) and (not integer or x == int(x))
         if not ok:
-            what = "a positive integer" if integer else "a positive number" if positive else "finite"
+            what = ("a positive integer" if integer else "a positive number" if positive
+                    else "finite")
             self.bad(row, cand, column, f"got {str(value)!r}; must be {what}")
             return None
         return x

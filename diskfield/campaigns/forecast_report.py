@@ -78,7 +78,8 @@ def _finite(x) -> float:
 
 def _draw_row(record: dict) -> dict:
     r = record["result"]
-    row = {"task_id": record["task_id"], "candidate": r["candidate"], "draw": record["meta"]["draw"],
+    row = {"task_id": record["task_id"], "candidate": r["candidate"],
+           "draw": record["meta"]["draw"],
            "generating_model": r["generating_model"],
            "two_ln_bayes_factor": r["two_ln_bayes_factor"],
            "two_ln_bayes_factor_err": r["two_ln_bayes_factor_err"]}

@@ -164,8 +164,8 @@ def run_forecast(null, alternative, candidates, out_dir, *, n_draws: int, seed: 
         by_id = {r["task_id"]: r["result"] for r in store.results()}
         missing = [t.task_id for t in stage1 if t.task_id not in by_id]
         if missing:
-            raise CampaignError(f"{out_dir}: fits of the current data failed ({', '.join(missing)}); "
-                                "see failed/ for the errors")
+            raise CampaignError(f"{out_dir}: fits of the current data failed "
+                                f"({', '.join(missing)}); see failed/ for the errors")
         ctx = context_from_results(null, alternative, by_id, sampler, evidence)
         stage2 = stage_two_tasks(ctx, candidates, n_draws, seed)
         reports.append(run_campaign(stage2, store, desc="forecast", **kw))

@@ -4,7 +4,7 @@ Layout of a campaign folder::
 
     campaign.json          kind, configuration fingerprint, seed, created time
     tasks/<task_id>.json   one per finished task (written to a temporary file, then os.replace)
-    failed/<task_id>.json  one per task that failed after its retries (removed when it later succeeds)
+    failed/<task_id>.json  one per task that failed after its retries (removed on later success)
 
 A task file appears only once its result is complete, so a campaign killed at any moment
 leaves a consistent folder: ``--resume`` reruns exactly the tasks without a file in ``tasks/``.

@@ -35,7 +35,8 @@ def add_campaign_options(parser) -> None:
     """Options shared by the campaign commands (model set-up, fit cost, Dask execution)."""
     parser.add_argument("file", metavar="FILE", help="compilation file (.ecsv or .csv)")
     parser.add_argument("--envelope", default="steady", help="temporal envelope (default: steady)")
-    parser.add_argument("--spin", default="body", help="spin projection: body (default), record, none")
+    parser.add_argument("--spin", default="body",
+                        help="spin projection: body (default), record, none")
     parser.add_argument("--priors", action="append", default=[], metavar="FILE",
                         help="prior TOML file read after the shipped ones (repeatable)")
     parser.add_argument("--threshold", type=float, default=DEFAULT_THRESHOLD,

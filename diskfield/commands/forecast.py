@@ -3,7 +3,7 @@
 Examples::
 
     diskfield forecast data_demo/demo_compilation.ecsv --candidates data_demo/candidates_demo.ecsv
-    diskfield forecast compilation.ecsv --candidates next.ecsv --draws 50 --scheduler tcp://head:8786
+    diskfield forecast comp.ecsv --candidates next.ecsv --draws 50 --scheduler tcp://head:8786
 
 The current compilation is fitted with ``--compare-to`` (default smooth) and ``--model``
 (default ring); for each candidate, ``--draws`` new data sets are simulated from the current
