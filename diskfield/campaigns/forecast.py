@@ -131,7 +131,7 @@ def context_from_results(null, alt, results: dict, sampler, evidence) -> Forecas
 
 
 def _augmented(spec: DiskSpec, cand: Candidate):
-    key = (spec.key(), cand)
+    key = (spec.key(), repr(cand))  # repr: NaN ages would defeat equality of the dataclass
     if key not in _CACHE:
         from ..likelihood import build_model
 
