@@ -146,3 +146,26 @@ def test_cli_single_fit_folder_without_model(tmp_path, capsys):
     assert "model rebuilding switched off" in md
     parser = _parse(out / "report.html")
     assert parser.refs and all((out / ref).is_file() for ref in parser.refs)
+
+
+@pytest.mark.slow
+def test_report_of_a_tiny_real_fit(tmp_path):
+    # a real (short, unconverged) ring fit through the project's own pipeline
+    from diskfield.records import read_compilation
+    from diskfield.runs import fit
+    from diskfield.sampling import SamplerSettings
+
+    from conftest import DATA_DIR, seed_for
+
+    comp = read_compilation(DATA_DIR / "small.csv")
+    settings = SamplerSettings(n_walkers=16, chunk=50, max_steps=100, n_starts=1,
+                               progress=False)
+    fit(comp, "ring", seed=seed_for("report-real-fit"), out=tmp_path / "fit", settings=settings)
+    html = build_report(tmp_path / "fit", **_FAST)
+    md = html.with_suffix(".md").read_text(encoding="utf-8")
+    assert "not rebuilt" not in md                          # the model was rebuilt
+    assert "pooled over posterior draws of model ring" in md
+    assert "figures/predictive_ring.png" in md and "figures/ring_parameters_ring.png" in md
+    assert "KS-2 (Kessarine): suspect overprint, see text" in md
+    parser = _parse(html)
+    assert all((html.parent / ref).is_file() for ref in parser.refs)
