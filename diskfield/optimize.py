@@ -62,7 +62,7 @@ def _objective(model, counter):
     return negloglike
 
 
-def maximize_likelihood(model, rng: np.random.Generator, *, n_starts: int = 4,
+def maximize_likelihood(model, rng: np.random.Generator, *, n_starts: int = 3,
                         n_screen: int = 256, max_evals: int | None = None) -> Optimum:
     """Find the maximum of ``model.log_likelihood`` by multi-start Nelder–Mead.
 
@@ -77,7 +77,7 @@ def maximize_likelihood(model, rng: np.random.Generator, *, n_starts: int = 4,
     n_screen : int
         Prior draws evaluated in one vectorised call to choose the starts.
     max_evals : int, optional
-        Likelihood evaluations per local search (default ``150 * P``; the chain, not the
+        Likelihood evaluations per local search (default ``100 * P``; the chain, not the
         optimiser, explores the posterior, so a good start is enough).
 
     Returns
@@ -91,7 +91,7 @@ def maximize_likelihood(model, rng: np.random.Generator, *, n_starts: int = 4,
     order = np.argsort(-screen)[:max(1, n_starts)]
     counter = [n_screen]
     fun = _objective(model, counter)
-    max_evals = max_evals or 150 * n_params
+    max_evals = max_evals or 100 * n_params
     found = []
     for start in u0[order]:
         res = optimize.minimize(fun, special.logit(start), method="Nelder-Mead",

@@ -84,7 +84,7 @@ class SamplerSettings:
     burn_tau: float = 3.0
     thin_tau: float = 0.5
     ball: float = 0.01
-    n_starts: int = 4
+    n_starts: int = 3
     progress: bool = False
 
     def walkers_for(self, n_params: int) -> int:
