@@ -13,9 +13,12 @@ Usage::
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import tempfile
 import time
+
+from pathlib import Path
 
 from diskfield.campaigns.calibration import SBCSettings
 from diskfield.campaigns.disk import DiskSBCProblem, make_spec
@@ -38,7 +41,8 @@ def _parse():
 
 
 def _timed_campaign(problem, n_sims, seed, workers):
-    """Wall time [s] of ``n_sims`` SBC tasks on a fresh cluster (start-up excluded)."""
+    """Wall time [s] of ``n_sims`` SBC tasks on a fresh cluster (start-up excluded), and the
+    CPU time the tasks received [s] (below workers x wall when other processes compete)."""
     with open_client(workers=workers) as client, tempfile.TemporaryDirectory() as out:
         client.run(lambda: None)  # workers are up before the clock starts
         start = time.perf_counter()
@@ -46,9 +50,11 @@ def _timed_campaign(problem, n_sims, seed, workers):
                                        settings=SBCSettings(n_draws=19), client=client,
                                        progress=False)
         wall = time.perf_counter() - start
+        cpu = sum(json.loads(p.read_text())["cpu_time_s"]
+                  for p in Path(out, "tasks").glob("*.json"))
     if report.failed:
         raise SystemExit(f"{len(report.failed)} benchmark task(s) failed: {report.failed[0]}")
-    return wall
+    return wall, cpu
 
 
 def main() -> None:
@@ -58,8 +64,8 @@ def main() -> None:
                               max_steps=args.max_steps, n_starts=args.starts)
     problem = DiskSBCProblem(spec, sampler)
     load = os.getloadavg()[0]
-    t1 = _timed_campaign(problem, args.sims, args.seed, 1)
-    t2 = _timed_campaign(problem, args.sims, args.seed, 2)
+    t1, cpu1 = _timed_campaign(problem, args.sims, args.seed, 1)
+    t2, cpu2 = _timed_campaign(problem, args.sims, args.seed, 2)
     rate1, rate2 = 60 * args.sims / t1, 60 * args.sims / t2
     per_fit = t1 / args.sims
     print(f"setting: {args.file} model={args.model} walkers={args.walkers} "
@@ -68,7 +74,12 @@ def main() -> None:
     print(f"1 worker : {t1:8.1f} s  {rate1:7.2f} fits/min")
     print(f"2 workers: {t2:8.1f} s  {rate2:7.2f} fits/min")
     print(f"scaling ratio (2 vs 1 worker): {rate2 / rate1:.2f}x (target >= 1.8x)")
-    print(f"per-fit cost on one worker: {per_fit:.1f} s")
+    print(f"per-fit cost on one worker: {per_fit:.1f} s wall, {cpu1 / args.sims:.1f} s CPU")
+    print(f"CPU share the workers received (CPU time / (workers x wall)): 1 worker "
+          f"{cpu1 / t1:.2f}, 2 workers {cpu2 / (2 * t2):.2f} (below 1: other processes "
+          "competed for the cores, and the scaling ratio understates the idle-machine one)")
+    print(f"CPU-time scaling (fits per CPU-second, 2 vs 1 worker): {cpu1 / cpu2:.2f} "
+          "(1.0 = no per-fit overhead from running two at once)")
     eff = min(1.0, (rate2 / rate1) / 2)
     print("projected 1,000-simulation calibration (verdict simulations not included):")
     print(f"  this machine, 2 workers : {1000 / rate2 / 60:8.2f} h")

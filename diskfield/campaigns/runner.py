@@ -89,9 +89,10 @@ class RunReport:
 
 def _execute(fn, args):
     """Worker-side wrapper: run the task and attach timing and worker facts."""
-    start = time.perf_counter()
+    start, cpu = time.perf_counter(), time.process_time()
     result = fn(*args)
     return {"result": result, "wall_time_s": time.perf_counter() - start,
+            "cpu_time_s": time.process_time() - cpu,
             "worker": {"host": socket.gethostname(), "pid": os.getpid(),
                        "omp_num_threads": os.environ.get("OMP_NUM_THREADS")}}
 
