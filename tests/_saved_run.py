@@ -294,6 +294,19 @@ def _write_comparison(folder: Path, models) -> None:
     _write_csv(folder / "prior_sensitivity.csv", sens)
 
 
+def _write_truth(folder: Path) -> None:
+    """A declared-truth recovery as the demo writes it (values invented for the test)."""
+    rows = [{"parameter": "ring_radius", "true_value": 4.5, "median": 4.4, "q05": 3.9,
+             "q95": 5.0, "posterior_quantile": 0.6, "inside_90": True},
+            {"parameter": "ring_width", "true_value": 0.3, "median": 0.8, "q05": 0.55,
+             "q95": 1.05, "posterior_quantile": 0.0, "inside_90": False}]
+    recovery = {"true_model": "ring", "ring_demanded": False, "rows": rows, "not_sampled": [],
+                "sentence": "Truth (ring): 1 of 2 true parameter values lie inside the 90% "
+                            "posterior interval; outside: ring_width."}
+    (folder / "truth_recovery.json").write_text(json.dumps(recovery, indent=1))
+    (folder / "truth_recovery.md").write_text("# Recovery of the declared truth\n")
+
+
 def make_saved_run(path, *, kind: str = "comparison", models=("smooth", "ring"),
                    n_chain: int = 6, n_draw: int = 40, seed: int = 20260101) -> Path:
     """Write a small saved fit (``kind="fit"``) or comparison (``kind="comparison"``).
@@ -309,6 +322,7 @@ def make_saved_run(path, *, kind: str = "comparison", models=("smooth", "ring"),
     for m in models:
         _write_fit(path / m, m, comp, rng, seed, n_chain, n_draw, evidence=True)
     _write_comparison(path, models)
+    _write_truth(path)
     comp.write(path / "compilation.ecsv", format="ascii.ecsv", overwrite=True)
     _write_priors(path)
     _write_manifest(path, seed)

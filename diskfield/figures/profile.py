@@ -27,21 +27,25 @@ def _draw_bands(ax, bands: dict[str, Bands]) -> None:
 
 
 def _draw_records(ax, records, x_of, reservoirs, xerr_of=None) -> None:
-    """Records at x positions from ``x_of(record)`` with their implied-field bars."""
-    for rec in records:
-        x, (lo, mid, hi) = x_of(rec), rec.implied_ut
-        if not np.isfinite(x):
-            continue
-        marker = reservoir_marker(rec.reservoir, reservoirs)
-        if rec.is_limit:
-            draw_upper_limits(ax, [x], [mid])
-            ax.plot([x], [mid], ls="none", marker=marker, mfc="white", mec="0.2",
-                    label=rec.reservoir)
-            continue
-        xerr = xerr_of(rec) if xerr_of else None
-        ax.errorbar([x], [mid], yerr=[[mid - lo], [hi - mid]], xerr=xerr, fmt=marker,
-                    color="0.2", mfc="white", ms=4, elinewidth=0.6, capsize=0,
-                    label=rec.reservoir)
+    """Records at x positions from ``x_of(record)`` with their implied-field bars, drawn as
+    one artist per reservoir (many single-point artists make saving slow)."""
+    for reservoir in dict.fromkeys(r.reservoir for r in records):
+        mine = [r for r in records if r.reservoir == reservoir and np.isfinite(x_of(r))]
+        marker = reservoir_marker(reservoir, reservoirs)
+        est = [r for r in mine if not r.is_limit]
+        lim = [r for r in mine if r.is_limit]
+        if est:
+            x = np.array([x_of(r) for r in est])
+            q = np.array([r.implied_ut for r in est]).T
+            xerr = np.array([xerr_of(r) for r in est])[:, :, 0].T if xerr_of else None
+            ax.errorbar(x, q[1], yerr=[q[1] - q[0], q[2] - q[1]], xerr=xerr, fmt=marker,
+                        color="0.2", mfc="white", ms=4, elinewidth=0.6, capsize=0,
+                        label=reservoir)
+        if lim:
+            x = np.array([x_of(r) for r in lim])
+            y = np.array([r.implied_ut[1] for r in lim])
+            draw_upper_limits(ax, x, y)
+            ax.plot(x, y, ls="none", marker=marker, mfc="white", mec="0.2", label=reservoir)
 
 
 def _fanned_distance(records, by_body, spread: float = 0.04):

@@ -18,7 +18,7 @@ from .assets import (ReportContext, body_points, comparison_blocks, compilation_
 from .loading import SavedRunData, load_run
 from .render import Items, Para, Section, to_html_page, to_markdown_page
 from .sections import (assumption_blocks, convergence_blocks, exclusion_blocks,
-                       manifest_blocks, sensitivity_blocks, verdict_blocks)
+                       manifest_blocks, sensitivity_blocks, truth_blocks, verdict_blocks)
 
 __all__ = ["build_report", "attach_models", "report_sections"]
 
@@ -76,6 +76,8 @@ def report_sections(ctx: ReportContext, run: SavedRunData) -> list:
     else:
         sections.append(Section("Fit", (Para(f"A single fit of model {ref}; no model "
                                              "comparison in this run."),)))
+    if run.truth:
+        sections.append(Section("Declared truth", tuple(truth_blocks(ctx, run))))
     sections.append(Section("Posterior summaries", tuple(summary_blocks(ctx, run))))
     sections += _figure_sections(ctx, run, priors)
     if run.kind == "comparison":

@@ -74,6 +74,8 @@ class SavedRunData:
     verdict: dict = field(default_factory=dict)
     sensitivity: list = field(default_factory=list)
     missing: list = field(default_factory=list)
+    truth: dict = field(default_factory=dict)
+    truth_text: str = ""
 
 
 def _read_json(path: Path) -> dict:
@@ -189,6 +191,10 @@ def load_run(run_dir) -> SavedRunData:
                        comparison, missing=missing)
     if kind == "comparison":
         _load_comparison_extras(run, missing)
+    if (path / "truth_recovery.json").is_file():  # written by the demo (simulated data)
+        run.truth = _read_json(path / "truth_recovery.json")
+        md = path / "truth_recovery.md"
+        run.truth_text = md.read_text(encoding="utf-8").strip() if md.is_file() else ""
     return run
 
 

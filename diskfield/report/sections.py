@@ -10,7 +10,7 @@ import numpy as np
 from ..tables import Column, TextTable, measure
 from .render import Items, Links, Para, Pre
 
-__all__ = ["verdict_blocks", "sensitivity_blocks", "convergence_table", "convergence_blocks",
+__all__ = ["truth_blocks", "verdict_blocks", "sensitivity_blocks", "convergence_table", "convergence_blocks",
            "assumption_blocks", "exclusion_blocks", "manifest_blocks", "CAUTION"]
 
 CAUTION = ("The conclusions rest with the authors' judgement of each record: the model treats "
@@ -49,6 +49,28 @@ def verdict_blocks(ctx, run, ref: str, diffs: dict) -> list:
              "log-likelihoods" for m, d in diffs.items() if m != ref]
     if items:
         blocks.append(Items(tuple(items)))
+    return blocks
+
+
+def truth_blocks(ctx, run) -> list:
+    """Recovery of a declared truth (simulated compilations such as the demo's)."""
+    t = run.truth
+    blocks = [Para(str(t.get("sentence", "")))] if t.get("sentence") else []
+    rows = t.get("rows") or []
+    if rows:
+        cols = (Column("parameter", "Parameter", align="l"), Column("true_value", "True"),
+                Column("median", "Median"), Column("interval_90", "90% interval"),
+                Column("inside_90", "Inside 90%"))
+        body = tuple((str(r["parameter"]), _num(r.get("true_value"), ".4g"),
+                      _num(r.get("median"), ".4g"),
+                      f"{_num(r.get('q05'), '.4g')} to {_num(r.get('q95'), '.4g')}",
+                      "yes" if r.get("inside_90") else "no") for r in rows)
+        table = TextTable(cols, body, caption=f"Declared truth against the posterior of model "
+                          f"{t.get('true_model', '')}", label="tab:truth")
+        blocks.append(ctx.table(table, "truth_recovery"))
+    if run.truth_text:
+        (ctx.out_dir / "truth_recovery.md").write_text(run.truth_text + "\n", encoding="utf-8")
+        blocks.append(Links("Truth recovery as written by the run", ("truth_recovery.md",)))
     return blocks
 
 
