@@ -43,7 +43,8 @@ _LATEX_SPECIALS = {
 _LATEX_RE = re.compile("|".join(re.escape(k) for k in _LATEX_SPECIALS))
 
 #: LaTeX for units written in headers; other units are escaped text (convention).
-_LATEX_UNITS = {"uT": r"$\mu$T", "Msun/yr": r"$M_\odot$\,yr$^{-1}$"}
+_LATEX_UNITS = {"uT": r"$\mu$T", "Msun/yr": r"$M_\odot$\,yr$^{-1}$",
+                "solMass / yr": r"$M_\odot$\,yr$^{-1}$"}
 
 #: Units of the team's shared parameter names (used when a profile registry is not at hand).
 PARAMETER_UNITS = {

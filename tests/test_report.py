@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import hashlib
+import json
 import re
 from html.parser import HTMLParser
 from pathlib import Path
@@ -138,6 +139,9 @@ def test_bad_folders_are_clear_errors(tmp_path, capsys):
 
 def test_cli_single_fit_folder_without_model(tmp_path, capsys):
     run = make_saved_run(tmp_path / "fit", kind="fit")
+    fit_json = json.loads((run / "fit.json").read_text())
+    fit_json["fixed"] = {"ring2_width": 0.5}  # a parameter fixed by a prior file
+    (run / "fit.json").write_text(json.dumps(fit_json))
     out = tmp_path / "cli_report"
     assert main(["report", str(run), "--out", str(out), "--dpi", "40", "--draws", "20",
                  "--no-model"]) == 0
@@ -146,6 +150,7 @@ def test_cli_single_fit_folder_without_model(tmp_path, capsys):
     assert "## Verdict" not in md and "no model comparison" in md
     assert "distance *prior*" in md          # the caption says where distances came from
     assert "model rebuilding switched off" in md
+    assert "fixed by the priors (not sampled): ring2_width = 0.5 AU" in md
     parser = _parse(out / "report.html")
     assert parser.refs and all((out / ref).is_file() for ref in parser.refs)
 

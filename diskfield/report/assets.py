@@ -235,15 +235,28 @@ def comparison_blocks(ctx, run, diffs: dict, ref: str) -> list:
     return [block, ctx.figure(fig, "comparison", caption)]
 
 
+def _parameter_units() -> dict:
+    """Units of every declared parameter (the plug-ins' declarations win over the fallback)."""
+    try:
+        from ..priorset import known_parameters
+    except ImportError:
+        return dict(PARAMETER_UNITS)
+    return {**PARAMETER_UNITS, **{n: p.unit for n, p in known_parameters().items()}}
+
+
 def summary_blocks(ctx, run) -> list:
-    """Posterior-summary table of each model (all formats)."""
-    out = []
+    """Posterior-summary table of each model (all formats), and its fixed parameters."""
+    out, units = [], _parameter_units()
     for name, fit in run.fits.items():
         if fit.summary:
-            out.append(ctx.table(summary_table(fit.summary, name, PARAMETER_UNITS),
+            out.append(ctx.table(summary_table(fit.summary, name, units),
                                  f"posterior_summary_{name}"))
         else:
             out.append(Para(f"Model {name}: posterior_summary_{name}.csv is missing."))
+        fixed = fit.fit.get("fixed") or {}
+        if fixed:
+            out.append(Para(f"Model {name}, fixed by the priors (not sampled): " + ", ".join(
+                f"{k} = {v:g} {units.get(k, '')}".rstrip() for k, v in sorted(fixed.items()))))
     return out
 
 
