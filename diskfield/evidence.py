@@ -16,6 +16,7 @@ of) the prior support.
 from __future__ import annotations
 
 import time
+import warnings
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
@@ -121,8 +122,12 @@ def nested_evidence(model, *, seed: int, nlive: int = DEFAULT_NLIVE,
     ckpt = str(checkpoint_file) if checkpoint_file is not None else None
     if resume and ckpt and Path(ckpt).is_file():
         sampler = dynesty.NestedSampler.restore(ckpt)
-        sampler.run_nested(resume=True, dlogz=dlogz, print_progress=progress,
-                           checkpoint_file=ckpt)
+        with warnings.catch_warnings():
+            # resuming a run that had already finished is the normal case after a kill
+            # during a later stage; dynesty warns about it, we simply reuse the result
+            warnings.filterwarnings("ignore", message="You are resuming a finished")
+            sampler.run_nested(resume=True, dlogz=dlogz, print_progress=progress,
+                               checkpoint_file=ckpt)
     else:
         sampler = dynesty.NestedSampler(_LogLike(model), _PriorTransform(model), ndim,
                                         nlive=nlive, rstate=np.random.default_rng(seed),

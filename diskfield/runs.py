@@ -195,8 +195,9 @@ def _write_fit_folder(outcome, comp, seed, argv) -> None:
     rhat_ess = {n: (outcome.criteria.rhat[n], outcome.criteria.ess_bulk[n])
                 for n in model.parameter_names}
     write_csv(out / f"posterior_summary_{name}.csv",
-              posterior_summary(outcome.run.draws(), model.parameter_names, rhat_ess),
-              SUMMARY_COLUMNS)
+              posterior_summary(outcome.run.draws(), model.parameter_names, rhat_ess,
+                                converged=outcome.run.converged),
+              SUMMARY_COLUMNS + ("converged",))
     write_csv(out / f"field_profile_{name}.csv", field_profile(model, outcome.run.draws(),
                                                                seed=seed), PROFILE_COLUMNS)
     write_inputs(out, comp, model.config.get("prior_files", ()))

@@ -37,7 +37,7 @@ import emcee
 import h5py
 import numpy as np
 
-from .errors import CheckpointError, OptionError
+from .errors import CheckpointError, ConvergenceError, OptionError
 from .manifest import atomic_path
 from .optimize import maximize_likelihood, unit_to_theta
 
@@ -207,8 +207,9 @@ def _initial_walkers(model, optimum, rng, n_walkers, ball, logp):
         if not np.any(bad):
             return theta
         theta[bad] = unit_to_theta(model, rng.uniform(size=(bad.sum(), n_params)))
-    raise CheckpointError("could not find starting positions with a finite posterior "
-                          "(prior support and likelihood do not overlap)")
+    raise ConvergenceError("could not find walker starting positions with a finite posterior "
+                           "in 100 tries: the likelihood is -inf wherever the priors allow; "
+                           "check the prior files against the data")
 
 
 def _seed32(seed: int) -> int:

@@ -31,7 +31,8 @@ PROFILE_COLUMNS = ("r_au", "t_myr", "b_median_ut", "b_q025_ut", "b_q16_ut", "b_q
 _MAX_PROFILE_DRAWS = 2000
 
 
-def posterior_summary(draws, names, rhat_ess: dict) -> list[dict]:
+def posterior_summary(draws, names, rhat_ess: dict, converged: bool | None = None
+                      ) -> list[dict]:
     """One row per parameter.
 
     Parameters
@@ -41,6 +42,9 @@ def posterior_summary(draws, names, rhat_ess: dict) -> list[dict]:
     names : sequence of str
     rhat_ess : dict
         ``{name: (rhat, ess_bulk)}`` from :func:`diskfield.azadapter.rhat_ess`.
+    converged : bool, optional
+        When given, an extra ``converged`` column (after the DESIGN columns) marks every
+        row of an unconverged fit.
     """
     rows = []
     flat = np.asarray(draws, float).reshape(-1, len(names))
@@ -48,7 +52,10 @@ def posterior_summary(draws, names, rhat_ess: dict) -> list[dict]:
         x = flat[:, i]
         q = np.percentile(x, [50, 5, 16, 84, 95])
         rhat, ess = rhat_ess.get(name, (np.nan, np.nan))
-        rows.append(dict(zip(SUMMARY_COLUMNS, (name, *q, x.mean(), x.std(ddof=1), rhat, ess))))
+        row = dict(zip(SUMMARY_COLUMNS, (name, *q, x.mean(), x.std(ddof=1), rhat, ess)))
+        if converged is not None:
+            row["converged"] = bool(converged)
+        rows.append(row)
     return rows
 
 

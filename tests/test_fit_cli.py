@@ -61,7 +61,7 @@ def test_fit_folder_follows_the_schema(fitted):
     fit = json.loads((fitted / "fit.json").read_text())
     assert FIT_JSON_KEYS <= set(fit) and fit["model"] == "smooth" and fit["seed"] == 5
     assert fit["converged"] is False and any("unconverged" in f for f in fit["flags"])
-    assert _header(fitted / "posterior_summary_smooth.csv") == SUMMARY_COLUMNS
+    assert _header(fitted / "posterior_summary_smooth.csv") == SUMMARY_COLUMNS + ("converged",)
     assert _header(fitted / "field_profile_smooth.csv") == PROFILE_COLUMNS
     saved = load_fit(fitted)
     idata = saved.idata

@@ -95,7 +95,7 @@ def conjugate_gaussian_model(n=6, sigma=0.5):
     return model, post_mean, np.sqrt(post_var) * np.ones(2)
 
 
-FAST = SamplerSettings(n_walkers=16, chunk=200, max_steps=2000, n_starts=2)
+FAST = SamplerSettings(n_walkers=16, chunk=200, max_steps=600, n_starts=2)
 
 
 def test_posterior_moments_match_conjugate_normal():
