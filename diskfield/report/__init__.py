@@ -57,8 +57,7 @@ def _figure_sections(ctx, run, priors) -> list:
     spin = str(first.fit.get("spin", "body"))
     records = record_points(run, priors, spin)
     bodies, source = body_points(run, first, priors)
-    return [Section("Field profile", tuple(profile_blocks(ctx, run, priors, records, bodies,
-                                                          source)
+    return [Section("Field profile", tuple(profile_blocks(ctx, run, records, bodies, source)
                                            + time_blocks(ctx, run, records, bodies, source))),
             Section("Ring parameters", tuple(pair_blocks(ctx, run))),
             Section("Posterior predictive check", tuple(predictive_blocks(ctx, run)))]

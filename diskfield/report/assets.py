@@ -100,7 +100,7 @@ _IMPLIED = ("Record-implied ambient field: the value with the recording terms re
             "shape. Bands: 68% and 95% posterior intervals of B with the median line.")
 
 
-def profile_blocks(ctx, run, priors, records, bodies, source) -> list:
+def profile_blocks(ctx, run, records, bodies, source) -> list:
     """B(r) figure at the saved epochs (from the field_profile CSVs)."""
     epochs = _epochs(run)
     if not epochs:

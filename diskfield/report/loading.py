@@ -132,7 +132,7 @@ def _fit_folders(path: Path) -> list[Path]:
     return sorted(p for p in path.iterdir() if p.is_dir() and (p / "fit.json").is_file())
 
 
-def _model_order(path: Path, folders: list[Path], comparison: list) -> list[Path]:
+def _model_order(folders: list[Path], comparison: list) -> list[Path]:
     order = [str(r.get("model", "")) for r in comparison]
     by_name = {p.name: p for p in folders}
     ordered = [by_name[m] for m in order if m in by_name]
@@ -174,7 +174,7 @@ def load_run(run_dir) -> SavedRunData:
         kind, folders, comparison = "fit", [path], []
     elif (path / "comparison.csv").is_file():
         comparison = read_csv_rows(path / "comparison.csv")
-        kind, folders = "comparison", _model_order(path, _fit_folders(path), comparison)
+        kind, folders = "comparison", _model_order(_fit_folders(path), comparison)
     else:
         raise OptionError("DIR", str(path), _VALID_DIR)
     fits = {}
