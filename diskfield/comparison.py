@@ -29,6 +29,7 @@ Precisely, for scale s:
 from __future__ import annotations
 
 import json
+import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -238,12 +239,15 @@ def compare(comp, models=("smooth", "ring", "two-ring"), *, envelope="steady", s
     for name in models:
         model = build(name, [])
         sub = out / name if out else None
+        # with --resume, a model whose fit never started simply starts
+        started = sub is not None and (sub / "checkpoint.h5").is_file()
         fits[name] = fit_model(model, comp=comp, seed=seed, out=sub, settings=settings,
-                               resume=resume, argv=argv)
+                               resume=resume and started, argv=argv)
         if evidence:
             evid[name] = nested_evidence(model, seed=seed, nlive=nlive, dlogz=dlogz,
                                          checkpoint_file=sub / "dynesty.pkl" if sub else None,
-                                         resume=resume, progress=settings.progress)
+                                         resume=resume,
+                                         progress=settings.progress and sys.stderr.isatty())
             if sub:
                 write_atomic(sub / "evidence.json", json.dumps(evid[name].as_dict(), indent=2))
     sds = _savage_dickey(fits, seed)

@@ -208,3 +208,15 @@ def test_synthetic_ringed_compilation_demands_a_ring_and_smooth_does_not(tmp_pat
     assert two - 2 * err > 6, (two, err)
     two0, err0 = _two_ln_b(_synthetic(tmp_path, 0.0))
     assert two0 < 6, (two0, err0)
+
+
+def test_compare_resume_reuses_finished_fits_and_starts_missing_ones(tmp_path):
+    settings = SamplerSettings(n_walkers=16, chunk=100, max_steps=300, n_starts=1)
+    out = tmp_path / "c"
+    first = compare(None, ["smooth", "ring"], build=_toy_builder(0.6), seed=SEED,
+                    evidence=False, settings=settings, out=out)
+    (out / "ring" / "checkpoint.h5").unlink()  # as if killed before the ring fit started
+    again = compare(None, ["smooth", "ring"], build=_toy_builder(0.6), seed=SEED,
+                    evidence=False, settings=settings, out=out, resume=True)
+    for name in ("smooth", "ring"):
+        assert np.array_equal(first.fits[name].run.chain, again.fits[name].run.chain), name
