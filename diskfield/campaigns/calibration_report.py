@@ -153,7 +153,7 @@ def _rank_figure(summary: CalibrationSummary, stem: Path) -> list[Path]:
     names = summary.parameter_names
     ncol = min(3, len(names))
     nrow = -(-len(names) // ncol)
-    fig, axes = new_figure(2.3 * ncol, 1.8 * nrow, nrows=nrow, ncols=ncol, squeeze=False)
+    fig, axes = new_figure(2.4 * ncol, 2.0 * nrow, nrows=nrow, ncols=ncol, squeeze=False)
     n_sims = summary.ranks.shape[0]
     for j, ax in enumerate(axes.ravel()):
         if j >= len(names):
@@ -167,7 +167,7 @@ def _rank_figure(summary: CalibrationSummary, stem: Path) -> list[Path]:
         ax.axhspan(lo, hi, color="0.85", lw=0)
         ax.axhline(n_sims / n_bins, color="0.5", lw=0.6)
         ax.bar(np.arange(n_bins), counts, width=1.0, color="#0072B2", edgecolor="white", lw=0.3)
-        ax.set_title(f"{names[j]} (p = {summary.sbc_rows[j]['chi2_p']:.2g})")
+        ax.set_title(f"{names[j]}\nchi-square p = {summary.sbc_rows[j]['chi2_p']:.2g}")
         ax.set_xlabel(f"rank bin (L = {summary.n_draws})")
         ax.set_ylabel("simulations")
     return save_figure(fig, stem, dpi=150)
