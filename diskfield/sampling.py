@@ -263,37 +263,60 @@ def run_sampler(model, *, seed: int, settings: SamplerSettings = SamplerSettings
     n_walkers = settings.walkers_for(len(names))
     fp = _fingerprint(fingerprint, seed, names, n_walkers)
     logp = log_probability(model)
-    if resume:
-        saved = load_checkpoint(checkpoint, expect=fp)
-        state = emcee.State(saved["chain"][-1], log_prob=saved["log_prob"][-1],
-                            blobs=saved["blobs"][-1], random_state=saved["random_state"])
-        opt_theta, opt_lnl = saved["optimum_theta"], saved["optimum_log_likelihood"]
-        parts = {k: [saved[k]] for k in ("chain", "log_prob", "blobs")}
-        n_acc, tau_hist = saved["n_accepted"], list(saved["tau_history"])
-    else:
-        state, opt_theta, opt_lnl = _fresh_state(model, settings, seed, logp, n_walkers)
-        parts = {"chain": [], "log_prob": [], "blobs": []}
-        n_acc, tau_hist = np.zeros(n_walkers, dtype=np.int64), []
+    loop = (_resume_loop(checkpoint, fp) if resume
+            else _fresh_loop(model, settings, seed, logp, n_walkers))
     sampler = emcee.EnsembleSampler(n_walkers, len(names), logp, vectorize=True, moves=_moves())
-    done = sum(p.shape[0] for p in parts["chain"])
-    converged = bool(resume and saved["converged"])
-    with _progress(settings, done) as bar:
-        while done < settings.max_steps and not converged:
-            n = min(settings.chunk, settings.max_steps - done)
-            state = _run_chunk(sampler, state, n, bar)
-            for key, arr in (("chain", sampler.get_chain()), ("log_prob", sampler.get_log_prob()),
-                             ("blobs", _blobs(sampler, model.n_bodies, n))):
-                parts[key].append(arr)
-            n_acc = n_acc + np.asarray(sampler.backend.accepted, dtype=np.int64)
-            done += n
-            chain = np.concatenate(parts["chain"])
-            tau, converged = _check_tau(chain, tau_hist[-1] if tau_hist else None, settings)
-            tau_hist.append(tau)
+    with _progress(settings, loop.done) as bar:
+        while loop.done < settings.max_steps and not loop.converged:
+            _advance(loop, sampler, min(settings.chunk, settings.max_steps - loop.done), bar,
+                     settings, model.n_bodies)
             if checkpoint is not None:
-                _write_checkpoint(checkpoint, fp, parts, n_acc, tau_hist, state,
-                                  (opt_theta, opt_lnl, converged))
-    return _finish(names, parts, n_acc, tau_hist, converged, settings,
-                   opt_theta, opt_lnl, time.perf_counter() - t0)
+                _write_checkpoint(checkpoint, fp, loop)
+    return _finish(names, loop, settings, time.perf_counter() - t0)
+
+
+@dataclass
+class _Loop:
+    """Mutable state of the chunked run (what a checkpoint stores)."""
+
+    state: object
+    parts: dict
+    n_accepted: np.ndarray
+    tau_history: list
+    converged: bool
+    optimum_theta: np.ndarray
+    optimum_log_likelihood: float
+
+    @property
+    def done(self) -> int:
+        return sum(p.shape[0] for p in self.parts["chain"])
+
+
+def _fresh_loop(model, settings, seed, logp, n_walkers) -> _Loop:
+    state, opt_theta, opt_lnl = _fresh_state(model, settings, seed, logp, n_walkers)
+    return _Loop(state, {"chain": [], "log_prob": [], "blobs": []},
+                 np.zeros(n_walkers, dtype=np.int64), [], False, opt_theta, opt_lnl)
+
+
+def _resume_loop(checkpoint, fp) -> _Loop:
+    saved = load_checkpoint(checkpoint, expect=fp)
+    state = emcee.State(saved["chain"][-1], log_prob=saved["log_prob"][-1],
+                        blobs=saved["blobs"][-1], random_state=saved["random_state"])
+    return _Loop(state, {k: [saved[k]] for k in ("chain", "log_prob", "blobs")},
+                 saved["n_accepted"], list(saved["tau_history"]), saved["converged"],
+                 saved["optimum_theta"], saved["optimum_log_likelihood"])
+
+
+def _advance(loop, sampler, n, bar, settings, n_bodies) -> None:
+    """Run one chunk of ``n`` steps and update the loop state and convergence test."""
+    loop.state = _run_chunk(sampler, loop.state, n, bar)
+    for key, arr in (("chain", sampler.get_chain()), ("log_prob", sampler.get_log_prob()),
+                     ("blobs", _blobs(sampler, n_bodies, n))):
+        loop.parts[key].append(arr)
+    loop.n_accepted = loop.n_accepted + np.asarray(sampler.backend.accepted, dtype=np.int64)
+    previous = loop.tau_history[-1] if loop.tau_history else None
+    tau, loop.converged = _check_tau(np.concatenate(loop.parts["chain"]), previous, settings)
+    loop.tau_history.append(tau)
 
 
 def _run_chunk(sampler, state, n, bar):
@@ -329,17 +352,16 @@ class _progress:
         return False
 
 
-def _finish(names, parts, n_acc, tau_hist, converged, settings, opt_theta, opt_lnl, wall):
-    chain = np.concatenate(parts["chain"])
-    log_prob = np.concatenate(parts["log_prob"])
-    blobs = np.concatenate(parts["blobs"])
-    tau = np.asarray(tau_hist[-1])
+def _finish(names, loop, settings, wall):
+    chain, log_prob, blobs = (np.concatenate(loop.parts[k]) for k in ("chain", "log_prob",
+                                                                       "blobs"))
+    tau = np.asarray(loop.tau_history[-1])
     tau_max = float(np.max(tau)) if np.all(np.isfinite(tau)) else float(chain.shape[0])
     burn = min(int(np.ceil(settings.burn_tau * tau_max)), chain.shape[0] // 2)
     thin = max(1, int(settings.thin_tau * tau_max))
-    run = SamplerRun(names, chain, log_prob, blobs, n_acc, tau, np.asarray(tau_hist),
-                     converged, [], burn, thin, np.asarray(opt_theta),
-                     float(opt_lnl), wall)
+    run = SamplerRun(names, chain, log_prob, blobs, loop.n_accepted, tau,
+                     np.asarray(loop.tau_history), bool(loop.converged), [], burn, thin,
+                     np.asarray(loop.optimum_theta), float(loop.optimum_log_likelihood), wall)
     chain_lnl = blobs.sum(axis=2)
     best = np.unravel_index(np.argmax(chain_lnl), chain_lnl.shape)
     if chain_lnl[best] > run.optimum_log_likelihood:
@@ -371,19 +393,18 @@ def _fingerprint(extra, seed, names, n_walkers):
     return fp
 
 
-def _write_checkpoint(path, fp, parts, n_acc, tau_hist, state, summary):
-    opt_theta, opt_lnl, converged = summary
-    key, keys, pos, has_gauss, cached = state.random_state
+def _write_checkpoint(path, fp, loop):
+    key, keys, pos, has_gauss, cached = loop.state.random_state
     with atomic_path(path) as tmp, h5py.File(tmp, "w") as f:
         for name in ("chain", "log_prob", "blobs"):
-            f.create_dataset(name, data=np.concatenate(parts[name]))
-        f.create_dataset("n_accepted", data=n_acc)
-        f.create_dataset("tau_history", data=np.asarray(tau_hist))
+            f.create_dataset(name, data=np.concatenate(loop.parts[name]))
+        f.create_dataset("n_accepted", data=loop.n_accepted)
+        f.create_dataset("tau_history", data=np.asarray(loop.tau_history))
         f.create_dataset("rng_keys", data=np.asarray(keys, dtype=np.uint32))
-        f.create_dataset("optimum_theta", data=np.asarray(opt_theta, float))
+        f.create_dataset("optimum_theta", data=np.asarray(loop.optimum_theta, float))
         f.attrs["rng"] = json.dumps([key, int(pos), int(has_gauss), float(cached)])
-        f.attrs["optimum_log_likelihood"] = float(opt_lnl)
-        f.attrs["converged"] = int(converged)
+        f.attrs["optimum_log_likelihood"] = float(loop.optimum_log_likelihood)
+        f.attrs["converged"] = int(loop.converged)
         f.attrs["fingerprint"] = json.dumps(fp, sort_keys=True)
 
 
