@@ -126,7 +126,9 @@ def test_killed_campaign_resumes_where_it_stopped(client, tmp_path):
 
 
 def test_store_refuses_silent_overwrite_and_mismatched_resume(tmp_path):
-    ResultStore(tmp_path, "calibration", "abc", 1)
+    ResultStore(tmp_path, "calibration", "other", 7)  # nothing stored yet: may be replaced
+    store = ResultStore(tmp_path, "calibration", "abc", 1)
+    store.write_result("t000", {"value": 1})
     with pytest.raises(CheckpointError, match="--resume"):
         ResultStore(tmp_path, "calibration", "abc", 1)
     with pytest.raises(CheckpointError, match="fingerprint"):

@@ -120,7 +120,7 @@ def open_client(scheduler: str | None = None, workers: int | None = None):
         raise OptionError("--workers", workers, "a positive integer")
     address = _scheduler_address(scheduler)
     if address:
-        with Client(address, timeout="30s") as client:
+        with _connect(address) as client:
             yield client
         return
     n = int(workers) if workers else (os.cpu_count() or 1)
@@ -128,6 +128,18 @@ def open_client(scheduler: str | None = None, workers: int | None = None):
                       dashboard_address=None, env=dict(SINGLE_THREAD_ENV)) as cluster, \
             Client(cluster) as client:
         yield client
+
+
+def _connect(address: str):
+    from distributed import Client
+
+    try:
+        return Client(address, timeout="20s")
+    except (OSError, TimeoutError) as err:
+        source = "--scheduler" if not os.environ.get("DASK_SCHEDULER_ADDRESS") else \
+            "--scheduler (or DASK_SCHEDULER_ADDRESS)"
+        raise OptionError(source, address, "the address of a running Dask scheduler, e.g. "
+                          f"tcp://host:8786 (connecting failed: {err})") from None
 
 
 def _failure_record(task: Task, future, retries: int) -> dict:

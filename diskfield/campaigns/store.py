@@ -96,7 +96,8 @@ class ResultStore:
 
     def _open(self, resume: bool) -> None:
         header = self.root / "campaign.json"
-        if header.exists():
+        # A header without any result (e.g. the cluster never came up) holds nothing to lose.
+        if header.exists() and (self.finished_ids() or self.failures() or resume):
             if not resume:
                 raise CheckpointError(
                     f"{self.root}: folder already holds a campaign; pass --resume to continue it "
