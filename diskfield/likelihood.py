@@ -57,6 +57,8 @@ class QuadratureSettings:
         Nodes of the numerical spin integral (bodies with upper limits).
     age_nodes : int
         Nodes per panel of an age integral.
+    spin_panel_nodes : int
+        Gauss–Legendre nodes per panel of the body-shared spin integral with upper limits.
     grade_factors : tuple of float
         Breakpoints at these multiples of the integrand's width either side of each crossing
         and of the closest approach.
@@ -70,6 +72,7 @@ class QuadratureSettings:
     spin_nodes: int = 16
     age_nodes: int = 6
     grade_factors: tuple = (1.0, 3.0, 9.0)
+    spin_panel_nodes: int = 5
 
 
 @dataclass(frozen=True)
@@ -289,7 +292,8 @@ class Model:
         width[..., 0] = np.where(found[..., 0], width[..., 0], edge_width)
         cross = np.where(np.isnan(cross), lo[..., None], cross)  # unused slots: empty panels
         graded = quad.graded_breaks(cross, width, lo[..., None], hi[..., None], s.grade_factors)
-        parts = [np.broadcast_to(base, (w,) + base.shape), graded.reshape(w, len(b.lo), -1)]
+        parts = [np.broadcast_to(base, (w,) + base.shape), graded.reshape(w, len(b.lo), -1),
+                 _edge_breaks(self.profile, p, level, scale, b, s.grade_factors)]
         if features is not None:
             parts.append(np.clip(features[:, None, :], lo[..., None], hi[..., None]))
         breaks = np.sort(np.concatenate(parts, axis=-1), axis=-1)
@@ -307,7 +311,7 @@ class Model:
         if np.any(b.needs_x):
             gx = np.flatnonzero(b.needs_x)
             sub = _subset(b, var, stats, gx)
-            out[:, gx] = _integrand_body_spin_numeric(phi[:, gx], *sub, self.settings.spin_nodes)
+            out[:, gx] = _integrand_body_spin_numeric(phi[:, gx], *sub, self.settings.spin_panel_nodes)
         return out
 
 
@@ -423,6 +427,37 @@ def _crossings(profile, p, scout, phi_s, level, b, max_count):
     return np.where(found, root, np.nan), np.where(found, slope, 1.0), found
 
 
+def _tail_width(profile, p, centre, level, scale):
+    """Width [AU] of a body's integrand at ``centre`` (W, G): ~ min(s / |ln R'|, 1 / |g'|,
+    1 / sqrt|g''|) with g = (ln R - c)^2 / 2 s^2, from central differences of ln R."""
+    h = 1e-4 * np.maximum(scale, 1e-3) * np.maximum(centre, 0.1)
+    pts = np.stack([centre - h, centre, centre + h], axis=-1)
+    ph = profile.log_field(pts, _expand(p, 2))
+    d1 = (ph[..., 2] - ph[..., 0]) / (2 * h)
+    d2 = (ph[..., 2] - 2 * ph[..., 1] + ph[..., 0]) / (h * h)
+    off = ph[..., 1] - level
+    v = scale * scale
+    g1, g2 = np.abs(off * d1) / v, np.abs(d1 * d1 + off * d2) / v
+    return np.minimum(scale / np.maximum(np.abs(d1), 1e-12),
+                      np.minimum(1.0 / np.maximum(g1, 1e-12), 1.0 / np.sqrt(np.maximum(g2, 1e-24))))
+
+
+def _edge_breaks(profile, p, level, scale, b, factors):
+    """One-sided graded breakpoints at the support end whose ln R is nearest the level (W, G, F).
+
+    A crossing at (or just beyond) a support end is invisible to the scout's sign changes;
+    the integrand then has a step or a Gaussian tail at that end.
+    """
+    ends = np.broadcast_to(np.stack([b.lo, b.hi], axis=-1), level.shape + (2,))
+    phi = profile.log_field(ends, _expand(p, 2))
+    use_lo = np.abs(phi[..., 0] - level) <= np.abs(phi[..., 1] - level)
+    edge = np.where(use_lo, b.lo, b.hi)
+    inward = np.where(use_lo, 1.0, -1.0)
+    width = _tail_width(profile, p, np.clip(edge + 1e-9 * inward, b.lo, b.hi), level, scale)
+    pts = edge[..., None] + (inward * width)[..., None] * np.asarray(factors)
+    return np.clip(pts, b.lo[:, None], b.hi[:, None])
+
+
 def _approach_point(profile, p, scout, phi_s, level, scale, b):
     """Where ln R comes closest to each body's level, and the integrand's width there (W, G).
 
@@ -445,16 +480,7 @@ def _approach_point(profile, p, scout, phi_s, level, scale, b):
     den = (r0 - rm) * (f0 - fp) - (r0 - rp) * (f0 - fm)
     vertex = r0 - 0.5 * num / np.where(np.abs(den) > 0, den, np.inf)
     centre = np.clip(vertex, np.maximum(rm, b.lo), np.minimum(rp, b.hi))
-    h = 1e-4 * np.maximum(scale, 1e-3) * np.maximum(centre, 0.1)
-    pts = np.stack([centre - h, centre, centre + h], axis=-1)
-    ph = profile.log_field(pts, _expand(p, 2))
-    d1 = (ph[..., 2] - ph[..., 0]) / (2 * h)
-    d2 = (ph[..., 2] - 2 * ph[..., 1] + ph[..., 0]) / (h * h)
-    off = ph[..., 1] - level
-    v = scale * scale
-    g1, g2 = np.abs(off * d1) / v, np.abs(d1 * d1 + off * d2) / v
-    width = np.minimum(scale / np.maximum(np.abs(d1), 1e-12),
-                       np.minimum(1.0 / np.maximum(g1, 1e-12), 1.0 / np.sqrt(np.maximum(g2, 1e-24))))
+    width = _tail_width(profile, p, centre, level, scale)
     return centre, width
 
 
@@ -498,45 +524,95 @@ def _subset(b, var, stats, gx):
     return zl, vl, take(lim), zbar, v, ln_k
 
 
-def _integrand_body_spin_numeric(phi, z, var, lim, zbar, v, ln_k, n_nodes):
-    """Body-shared spin with upper limits: integral over X by Gauss–Legendre in a CDF.
+#: Breakpoints of the Y rule, in units of the feature's width, either side of the
+#: detections' peak and of each limit (GL panels between them; +-20 widths is the range kept).
+_Y_GRADES = np.array([-20.0, -9.0, -3.0, -1.0, 0.0, 1.0, 3.0, 9.0, 20.0])
 
-    With detections, X ~ q(X) ∝ e^-X N(zbar; phi - X, V) on X >= 0 is a normal of mean
-    phi - zbar - V and variance V truncated at 0, whose mass is the EMG density; the limits'
-    product of normal CDFs is averaged over q with nodes in q's CDF (an exact change of
-    variables). Without detections, X ~ Exp(1) restricted to X >= X0 (nodes in its CDF) plus
-    Gauss–Legendre on [0, X0], X0 placed 4 sd before the tightest limit starts to pass.
+
+def _integrand_body_spin_numeric(phi, z, var, lim, zbar, v, ln_k, n_nodes):
+    """Body-shared spin with upper limits, by a cumulative integral in the recorded log field.
+
+    With Y = ln B - X the recorded log field, the spin integral is
+    F(phi) = e^-phi C(phi), C(phi) = int_-inf^phi e^Y h(Y) dY, where h(Y) (detections' Gaussian
+    product times the limits' normal CDFs) does not depend on the distance. C is tabulated
+    once per (walker, body) with Gauss–Legendre panels graded around the detections' peak and
+    every limit, and read at each distance node by integrating the panel's interpolating
+    polynomial up to phi. Below the tabulated range the limits are all but certain to pass:
+    C(phi) ~ e^phi prod Phi (limits only) or the closed-form EMG times prod Phi.
+
+    Parameters
+    ----------
+    phi : ndarray, shape (W, G, K)
+        ln R at the distance nodes.
+    z, var, lim : ndarray
+        Limits (G, L), their variances (W, G, L) and mask (G, L).
+    zbar, v, ln_k : ndarray, shape (W, G)
+        Detections' statistics (V = inf: no detections).
+    n_nodes : int
+        Gauss–Legendre nodes per Y panel.
     """
-    u, w = quad.gauss_legendre_unit(n_nodes)
-    log_u1, log_w = np.log1p(-u), np.log(w)
+    breaks, y_a, has_det, sd = _y_breaks(z, var, lim, zbar, v)
+    y, logw = quad.panel_rule(breaks, n_nodes)
+    lf = y + _log_h(y, z, var, lim, zbar, v, ln_k, has_det)
+    nb = breaks.shape[-1]
+    lf_p = lf.reshape(lf.shape[:2] + (nb - 1, n_nodes))
+    panel = quad.log_sum_exp(lf_p + logw.reshape(lf_p.shape), axis=-1)
+    tail0 = np.where(has_det, -np.inf, y_a + _log_h(y_a[..., None], z, var, lim, zbar, v, ln_k,
+                                                     has_det)[..., 0])
+    log_c = np.logaddexp.accumulate(np.concatenate([tail0[..., None], panel], axis=-1), axis=-1)
+    idx = np.sum(breaks[:, :, None, :] <= phi[..., None], axis=-1) - 1
+    p = np.clip(idx, 0, nb - 2)
+    a = np.take_along_axis(breaks, p, axis=-1)
+    h = np.take_along_axis(breaks, p + 1, axis=-1) - a
+    t = np.clip((phi - a) / np.where(h > 0, h, 1.0), 0.0, 1.0)
+    lfk = np.take_along_axis(lf_p, p[..., None], axis=2)
+    top = np.max(lfk, axis=-1)
+    part = np.sum(np.exp(lfk - top[..., None]) * quad.partial_panel_weights(t, n_nodes), axis=-1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        part = np.log(np.maximum(part * h, 0.0)) + top
+    inside = np.logaddexp(np.take_along_axis(log_c, p, axis=-1), part) - phi
+    above = log_c[..., -1:] - phi
+    below = _log_h_tail(phi, z, var, lim, zbar, v, ln_k, has_det)
+    return np.where(idx < 0, below, np.where(idx >= nb - 1, above, inside))
+
+
+def _y_breaks(z, var, lim, zbar, v):
+    """Sorted Y breakpoints (W, G, B), the range start Y_a (W, G), detection mask, limit sds."""
     has_det = np.isfinite(v)
-    out = np.empty(phi.shape)
-    args = (z, var, lim)
-    if np.any(has_det):
-        g = np.flatnonzero(has_det.any(axis=0))
-        vv = np.where(has_det[:, g], v[:, g], 1.0)[..., None]
-        sd = np.sqrt(vv)
-        d = phi[:, g] - zbar[:, g, None]
-        mu = d - vv
-        x = mu[..., None] - sd[..., None] * special.ndtri_exp(
-            special.log_ndtr(mu / sd)[..., None] + log_u1)
-        mass = ln_k[:, g, None] + emg_logpdf(d, vv)
-        out[:, g] = mass + quad.log_sum_exp(_log_limits(phi[:, g], x, *(a[..., g, :] if a.ndim == 3
-                                                                          else a[g] for a in args))
-                                            + log_w, axis=-1)
-    if not np.all(has_det):
-        g = np.flatnonzero(~has_det.all(axis=0))
-        zg, vg, lg = z[g], var[:, g], lim[g]
-        slack = phi[:, g, :, None] - zg[None, :, None, :] - 4.0 * np.sqrt(vg[:, :, None, :])
-        x0 = np.maximum(np.max(np.where(lg[None, :, None, :], slack, 0.0), axis=-1), 0.0)
-        high = -x0 + quad.log_sum_exp(_log_limits(phi[:, g], x0[..., None] - log_u1, zg, vg, lg)
-                                      + log_w, axis=-1)
-        x_low = x0[..., None] * u
-        with np.errstate(divide="ignore"):
-            low = quad.log_sum_exp(_log_limits(phi[:, g], x_low, zg, vg, lg) - x_low + log_w
-                                   + np.log(x0)[..., None], axis=-1)
-        out[:, g] = np.logaddexp(high, low)
-    return out
+    sv = np.sqrt(np.where(has_det, v, 1.0))
+    peak = zbar + np.where(has_det, v, 0.0)       # e^Y N(Y; zbar, V) peaks at zbar + V
+    sd = np.sqrt(var)
+    zl = np.broadcast_to(z, sd.shape)
+    lim_pts = zl[..., None] + sd[..., None] * _Y_GRADES
+    lo_lim = np.min(np.where(lim, zl - 20.0 * sd, np.inf), axis=-1)
+    hi_lim = np.max(np.where(lim, zl + 20.0 * sd, -np.inf), axis=-1)
+    y_a = np.where(has_det, peak - 20.0 * sv, lo_lim)
+    y_b = np.where(has_det, peak + 20.0 * sv, hi_lim)
+    det_pts = np.where(has_det[..., None], peak[..., None] + sv[..., None] * _Y_GRADES,
+                       y_a[..., None])
+    lim_pts = np.where(lim[..., None], lim_pts, y_a[..., None, None])
+    pts = np.concatenate([det_pts, lim_pts.reshape(sd.shape[:2] + (-1,)),
+                          y_a[..., None], y_b[..., None]], axis=-1)
+    pts = np.clip(pts, y_a[..., None], y_b[..., None])
+    return np.sort(pts, axis=-1), y_a, has_det, sd
+
+
+def _log_h(y, z, var, lim, zbar, v, ln_k, has_det):
+    """ln h(Y): detections' Gaussian product (K N(zbar; Y, V)) plus the limits' ln Phi, (W, G, Q)."""
+    vv = np.where(has_det, v, 1.0)[..., None]
+    det = np.where(has_det[..., None], ln_k[..., None] - 0.5 * (zbar[..., None] - y) ** 2 / vv
+                   - 0.5 * np.log(vv) - LN_SQRT_2PI, 0.0)
+    arg = (z[None, :, None, :] - y[..., None]) / np.sqrt(var[:, :, None, :])
+    return det + np.where(lim[None, :, None, :], special.log_ndtr(arg), 0.0).sum(axis=-1)
+
+
+def _log_h_tail(phi, z, var, lim, zbar, v, ln_k, has_det):
+    """ln F below the tabulated range: closed-form EMG (detections) plus the limits' ln Phi."""
+    vv = np.where(has_det, v, 1.0)[..., None]
+    det = np.where(has_det[..., None], ln_k[..., None] + emg_logpdf(phi - zbar[..., None], vv),
+                   0.0)
+    arg = (z[None, :, None, :] - phi[..., None]) / np.sqrt(var[:, :, None, :])
+    return det + np.where(lim[None, :, None, :], special.log_ndtr(arg), 0.0).sum(axis=-1)
 
 
 def _log_limits(phi, x, z, var, lim):

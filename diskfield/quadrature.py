@@ -24,6 +24,7 @@ __all__ = [
     "first_crossings",
     "refine_crossings",
     "graded_breaks",
+    "partial_panel_weights",
 ]
 
 
@@ -183,3 +184,35 @@ def graded_breaks(centre, scale, lo, hi, factors=(1.0, 3.0, 9.0)):
     f = np.concatenate([-np.asarray(factors)[::-1], [0.0], np.asarray(factors)])
     pts = centre[..., None] + scale[..., None] * f
     return np.clip(pts, np.asarray(lo)[..., None], np.asarray(hi)[..., None])
+
+
+@lru_cache(maxsize=16)
+def _antiderivative_coefficients(n: int) -> np.ndarray:
+    """C[k, j]: coefficient of t^(k+1) in A_j(t) = int_0^t l_j(s) ds, l_j the Lagrange basis
+    polynomial of the n Gauss–Legendre nodes on [0, 1]."""
+    x, _ = gauss_legendre_unit(n)
+    vander = np.vander(x, n, increasing=True)          # V[i, k] = x_i^k
+    coef = np.linalg.solve(vander, np.eye(n))          # l_j(s) = sum_k coef[k, j] s^k
+    return coef / np.arange(1, n + 1)[:, None]
+
+
+def partial_panel_weights(t: np.ndarray, n: int) -> np.ndarray:
+    """Weights w_j(t) with int_0^t f(s) ds ~ sum_j w_j(t) f(x_j) on one unit panel.
+
+    Integrates the polynomial interpolating f at the n Gauss–Legendre nodes x_j of [0, 1]
+    (exact for polynomials of degree < n; at t = 1 it equals the Gauss rule to round-off
+    for degree < n).
+
+    Parameters
+    ----------
+    t : ndarray
+        Upper limits in [0, 1].
+    n : int
+        Nodes per panel.
+
+    Returns
+    -------
+    ndarray, shape t.shape + (n,)
+    """
+    powers = np.asarray(t, float)[..., None] ** np.arange(1, n + 1)
+    return powers @ _antiderivative_coefficients(n)
