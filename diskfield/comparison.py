@@ -344,10 +344,8 @@ def _sensitivity(fits, evid, reference, build, seed, nlive, dlogz, out) -> list:
             if scale == 1.0:
                 z, notes = evid[name], ["default ring priors"]
             else:
-                folder = (out / name) if out else Path(_scratch())
-                path, notes = ring_prior_file(f.model, scale, folder /
-                                              f"ring_priors_x{scale:g}.toml")
-                z = nested_evidence(build(name, [path]), seed=seed, nlive=nlive, dlogz=dlogz)
+                z, notes = _scaled_evidence(f.model, name, scale, build, out, seed, nlive,
+                                            dlogz)
             rows.append({"model": name, "ring_prior_scale": scale,
                          "ln_bayes_factor": z.ln_evidence - z_ref.ln_evidence,
                          "ln_bayes_factor_err": float(np.hypot(z.ln_evidence_err,
@@ -356,9 +354,15 @@ def _sensitivity(fits, evid, reference, build, seed, nlive, dlogz, out) -> list:
     return rows
 
 
-def _scratch() -> str:
+def _scaled_evidence(model, name, scale, build, out, seed, nlive, dlogz):
+    """Evidence of ``name`` with its ring priors scaled; the prior file is kept in ``out``."""
     import tempfile
-    return tempfile.mkdtemp(prefix="diskfield-priors-")
+
+    with tempfile.TemporaryDirectory() as scratch:
+        folder = out / name if out is not None else Path(scratch)
+        path, notes = ring_prior_file(model, scale, folder / f"ring_priors_x{scale:g}.toml")
+        scaled = build(name, [path])
+    return nested_evidence(scaled, seed=seed, nlive=nlive, dlogz=dlogz), notes
 
 
 def _no_sensitivity(fits, reference, evidence) -> list:
