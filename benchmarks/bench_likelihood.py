@@ -1,0 +1,127 @@
+"""Timing of the marginalised likelihood (a script: prints figures and ratios, asserts nothing).
+
+Run:  python benchmarks/bench_likelihood.py [--walkers 64] [--repeat 20]
+
+(a) time per vectorised ``log_likelihood`` call on the demo compilation for each profile and
+    envelope; (b) the floor of the direct scheme, a bare ``scipy.special.log_ndtr`` over
+    walkers x records x distance nodes x age nodes elements (the node counts the model used),
+    timed in the same run; (c) the formulation written by hand (latents as explicit
+    parameters, a Python loop over records) per call; (d) scaling over synthetic
+    compilations of 30, 100, 300 and 1000 records.
+"""
+from __future__ import annotations
+
+import argparse
+import time
+
+import numpy as np
+from scipy import special, stats
+
+from diskfield.likelihood import build_model
+from diskfield.priorset import load_priors
+from diskfield.profiles import available_envelopes, available_profiles
+from diskfield.resources import demo_dir
+from diskfield.simulate import simulate_compilation, synthetic_compilation
+
+
+def _timed(func, repeat):
+    """Best-of-3 mean wall time [s] of ``repeat`` calls."""
+    func()
+    best = np.inf
+    for _ in range(3):
+        t0 = time.perf_counter()
+        for _ in range(repeat):
+            func()
+        best = min(best, (time.perf_counter() - t0) / repeat)
+    return best
+
+
+def _demo():
+    from diskfield.records import read_compilation
+
+    path = demo_dir() / "demo_compilation.ecsv"
+    if path.exists():
+        return read_compilation(path), str(path)
+    rng = np.random.default_rng(1)
+    return synthetic_compilation(40, rng), "synthetic (demo file absent)"
+
+
+def _walkers(model, n, rng):
+    return np.column_stack([p.sample(rng, n) for p in model.priors])
+
+
+def _nodes(model, theta):
+    """Mean distance nodes per body and age nodes per record the model used at theta."""
+    r, _ = model.body_distance_posterior(theta)
+    k_age = 1
+    if model.envelope.time_dependent:
+        from diskfield.likelihood import _age_rule
+
+        rule = _age_rule(model._ages, model.envelope, model.params(theta), model.settings)
+        k_age = rule.logw.shape[-1]
+    return r.shape[-1], k_age
+
+
+def _hand_written(model, theta_1d, latents):
+    """The practitioner's formulation: every latent an explicit parameter, loop over records."""
+    p = {k: v[0] for k, v in model.params(theta_1d).items()}
+    recs, terms = model.compilation.records, model._terms
+    r, x = latents
+    total = 0.0
+    for i in range(len(recs)):
+        g = recs.body_index[i]
+        mu = model.profile.log_field(np.array(r[g]), p) - x[g]
+        sd = np.sqrt(terms.var_fixed[i] + p["intrinsic_scatter"] ** 2)
+        total += (stats.norm.logcdf((terms.z[i] - mu) / sd) if recs.is_limit[i]
+                  else stats.norm.logpdf(terms.z[i], mu, sd))
+    return total
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--walkers", type=int, default=64)
+    ap.add_argument("--repeat", type=int, default=10)
+    args = ap.parse_args(argv)
+    rng = np.random.default_rng(20261202)
+    pset = load_priors()
+    comp, label = _demo()
+    w = args.walkers
+    print(f"demo: {label}: {len(comp.records)} records, {len(comp.bodies)} bodies; "
+          f"{w} walkers; best-of-3 means of {args.repeat} calls")
+    print(f"\n(a) log_likelihood per call / (b) floor: log_ndtr over W x records x r-nodes x "
+          f"age-nodes elements")
+    print(f"{'profile':12s} {'envelope':12s} {'(a) ms':>9s} {'K_r':>5s} {'K_t':>5s} "
+          f"{'(b) ms':>9s} {'(a)/(b)':>8s}")
+    for env in available_envelopes():
+        for prof in available_profiles():
+            model = build_model(comp, profile=prof, envelope=env, priors=pset)
+            theta = _walkers(model, w, rng)
+            t_a = _timed(lambda: model.log_likelihood(theta), args.repeat)
+            k_r, k_t = _nodes(model, theta)
+            elems = np.linspace(-5, 5, w * len(comp.records) * k_r * k_t)
+            t_b = _timed(lambda: special.log_ndtr(elems), max(1, args.repeat // 2))
+            print(f"{prof:12s} {env:12s} {1e3 * t_a:9.2f} {k_r:5d} {k_t:5d} {1e3 * t_b:9.2f} "
+                  f"{t_a / t_b:8.2f}")
+    model = build_model(comp, profile="ring", priors=pset)
+    theta = _walkers(model, 1, rng)
+    lat = ([b.sample(rng) for b in model._bodies.priors], rng.exponential(1.0, len(comp.bodies)))
+    t_c = _timed(lambda: _hand_written(model, theta, lat), max(1, args.repeat // 2))
+    t_1 = _timed(lambda: model.log_likelihood(theta), args.repeat)
+    print(f"\n(c) hand-written (explicit latents, loop over records), ring, one walker: "
+          f"{1e3 * t_c:.2f} ms per call; marginalised model, one walker: {1e3 * t_1:.2f} ms; "
+          f"marginalised model per walker at {w} walkers: see (a) / {w}")
+    print("\n(d) scaling (ring, steady, body spin): synthetic compilations")
+    print(f"{'records':>8s} {'bodies':>7s} {'ms/call':>9s} {'us/record':>10s}")
+    for n in (30, 100, 300, 1000):
+        design = synthetic_compilation(n, rng)
+        m0 = build_model(design, profile="ring", priors=pset)
+        truth = np.array([p.sample(rng) for p in m0.priors])
+        sim = simulate_compilation(design, m0, truth, rng)
+        model = build_model(sim, profile="ring", priors=pset)
+        theta = _walkers(model, w, rng)
+        t = _timed(lambda: model.log_likelihood(theta), max(1, args.repeat // 4))
+        print(f"{n:8d} {len(sim.bodies):7d} {1e3 * t:9.2f} {1e6 * t / n:10.1f}")
+
+
+if __name__ == "__main__":
+    main()
