@@ -24,7 +24,7 @@ import numpy as np
 from scipy import special
 
 from . import quadrature as quad
-from .errors import CompilationError, OptionError, PriorFileError
+from .errors import CompilationError, OptionError, PriorFileError, Problem
 from .priorspec import Normal, Uniform
 from .recording import LN_SQRT_2PI, emg_logpdf, emg_logsf, record_terms
 
@@ -851,4 +851,20 @@ def build_model(comp, profile: str = "ring", envelope: str = "steady", spin: str
     if len(comp.records) == 0 or len(comp.bodies) == 0:
         raise CompilationError("the compilation has no included records to fit",
                                source=comp.source)
+    _refuse_obliquity_prior(priors, spin)
     return Model(comp, prof, env, spin, priors, settings)
+
+
+def _refuse_obliquity_prior(priors, spin: str) -> None:
+    """A user prior on the spin obliquity is read but not yet marginalised: say so, never ignore it.
+
+    The closed forms assume isotropic spin axes (-ln u ~ Exponential(1)); a non-isotropic
+    prior needs its own quadrature over u, which this version does not have.
+    """
+    if getattr(priors, "spin_obliquity", None) is None or spin == "none":
+        return
+    origin = getattr(priors, "origins", {}).get("spin.obliquity", "a prior file")
+    raise PriorFileError(
+        [Problem(str(origin), "a user prior on the spin obliquity is not supported by the "
+                 "likelihood in this version (isotropic axes only); remove the table to use "
+                 "isotropic axes, or fit with --spin none", column="spin.obliquity")])
