@@ -47,9 +47,11 @@ def truth_recovery(comparison_dir, truth: dict) -> dict:
     Returns
     -------
     dict
-        ``true_model``, ``ring_demanded`` (the comparison's verdict), ``rows`` (one per true parameter
-        that the generating model samples; columns :data:`RECOVERY_COLUMNS`), ``not_sampled``
-        (true parameters the fitted model does not have), and a plain ``sentence``.
+        ``true_model``, ``ring_demanded`` (the comparison's verdict), ``rows`` (one per true
+        parameter that the generating model samples; columns :data:`RECOVERY_COLUMNS`),
+        ``not_sampled`` (true parameters the fitted model does not have), and a plain
+        ``sentence`` (parameter coverage, and whether the comparison's ring/no-ring answer
+        matches the generating model).
     """
     saved = load_comparison(comparison_dir)
     true_model = truth.get("meta", {}).get("profile", "")
@@ -74,12 +76,25 @@ def _sentence(true_model: str, rows: list, verdict: dict, fitted: bool) -> str:
     inside = [r["parameter"] for r in rows if r["inside_90"]]
     outside = [r["parameter"] for r in rows if not r["inside_90"]]
     parts = [f"Truth ({true_model}): {len(inside)} of {len(rows)} true parameter values lie "
-             "inside the 90% posterior interval of the generating model"]
+             f"inside the 90% posterior interval of model {true_model}"]
     if outside:
         parts.append(f"outside: {', '.join(outside)}")
-    headline = verdict.get("sentence", "")
-    text = "; ".join(parts) + "."
-    return text + (f" The comparison's verdict: {headline}" if headline else "")
+    return "; ".join(parts) + ". " + _model_choice(true_model, verdict)
+
+
+def _model_choice(true_model: str, verdict: dict) -> str:
+    """Whether the comparison's ring/no-ring answer matches the generating model."""
+    if not verdict:
+        return "No verdict was saved, so the model choice cannot be checked."
+    ringed = "ring" in true_model
+    demanded = bool(verdict.get("ring_demanded"))
+    truth = f"the generating model ({true_model}) {'has a' if ringed else 'has no'} ring"
+    found = "demanded a ring" if demanded else "did not demand a ring"
+    if ringed == demanded:
+        return f"Model choice: {truth} and the comparison {found}, as it should."
+    miss = ("a false positive" if demanded else
+            "the evidence for the true ring was not decisive in this realisation")
+    return f"Model choice: {truth} but the comparison {found} ({miss})."
 
 
 def write_truth_recovery(out_dir, recovery: dict) -> list[Path]:

@@ -81,3 +81,23 @@ def test_written_files_agree(saved, tmp_path):
     md = (tmp_path / "truth_recovery.md").read_text()
     assert md.count("\n| ") == 1 + len(rec["rows"])   # header row + one per parameter
     assert "nan" not in md.lower()
+
+
+@pytest.mark.parametrize("true_model, demanded, expected", [
+    ("ring", True, "has a ring and the comparison demanded a ring, as it should"),
+    ("ring", False, "has a ring but the comparison did not demand a ring"),
+    ("smooth", False, "has no ring and the comparison did not demand a ring, as it should"),
+    ("smooth", True, "has no ring but the comparison demanded a ring (a false positive)"),
+])
+def test_sentence_says_whether_the_model_choice_matches(saved, tmp_path, true_model,
+                                                         demanded, expected):
+    import shutil
+
+    run = shutil.copytree(saved, tmp_path / "run")
+    verdict = json.loads((run / "verdict.json").read_text())
+    verdict["ring_demanded"] = demanded
+    (run / "verdict.json").write_text(json.dumps(verdict))
+    rec = truth_recovery(run, {"meta": {"profile": true_model},
+                               "parameters": {"field_1au": 60.0}})
+    assert rec["ring_demanded"] is demanded
+    assert expected in rec["sentence"]
