@@ -147,3 +147,14 @@ def test_every_figure_writes_valid_deterministic_files(compilation, tmp_path):
         again = save_figure(rebuilt[name], tmp_path / "b" / name, dpi=40)
         for p, q in zip(first, again):
             assert p.read_bytes() == q.read_bytes(), f"{p.name} not deterministic"
+
+
+def test_comparison_figure_keeps_models_without_values():
+    fig = F.comparison_figure(["smooth", "ring", "two-ring"], [np.nan] * 3, [np.nan] * 3,
+                              [0.0, 2.0, np.nan], [0.0, 1.0, np.nan])
+    ax_z, ax_e = fig.axes
+    assert [t.get_text() for t in ax_z.get_yticklabels()] == ["smooth", "ring", "two-ring"]
+    lo, hi = ax_z.get_ylim()
+    assert lo < 0 and hi > 2  # every model's row is inside the axis, with or without a value
+    assert [t.get_text() for t in ax_z.texts] == ["ln Z not computed"] * 3
+    assert [t.get_text() for t in ax_e.texts] == ["ΔELPD not available"]
