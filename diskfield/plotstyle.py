@@ -19,6 +19,7 @@ matplotlib.use("Agg")  # figures are written to files only; no display is assume
 
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
+from matplotlib import ticker  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
 __all__ = [
@@ -31,6 +32,7 @@ __all__ = [
     "model_linestyle",
     "reservoir_marker",
     "draw_upper_limits",
+    "plain_log_labels",
     "save_figure",
 ]
 
@@ -145,6 +147,24 @@ def draw_upper_limits(ax, x, y, *, marker_color="0.2", drop: float = 0.5, label=
                                 "shrinkA": 0, "shrinkB": 0, "mutation_scale": 6})
     ax.plot(x, y, linestyle="none", marker="_", color=marker_color, markersize=6,
             label=label)
+
+
+class _PlainLogFormatter(ticker.LogFormatter):
+    """matplotlib's choice of which log ticks get a label, written as plain numbers
+    (``2``, ``40``, ``100``, ``0.1``) instead of ``2×10⁰`` or ``1e+02``."""
+
+    def __call__(self, x, pos=None):
+        return f"{x:g}" if super().__call__(x, pos) else ""
+
+
+def plain_log_labels(ax, axis: str = "y") -> None:
+    """Label a log ``axis`` (``"x"`` or ``"y"``) of ``ax`` with plain numbers.
+
+    Short log ranges otherwise get minor labels such as ``3×10¹`` that are hard to read.
+    """
+    target = ax.yaxis if axis == "y" else ax.xaxis
+    target.set_major_formatter(_PlainLogFormatter(labelOnlyBase=False))
+    target.set_minor_formatter(_PlainLogFormatter(labelOnlyBase=False))
 
 
 def save_figure(fig, stem, *, dpi: int = 300, formats=("pdf", "png")) -> list[Path]:

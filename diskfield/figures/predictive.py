@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..plotstyle import OKABE_ITO, draw_upper_limits, new_figure, style
+from ..plotstyle import OKABE_ITO, draw_upper_limits, new_figure, plain_log_labels, style
 
 __all__ = ["predictive_intervals", "predictive_coverage", "predictive_figure"]
 
@@ -89,6 +89,7 @@ def predictive_figure(records, observed_ln, is_limit, intervals, *, width_in: fl
         if lim.any():
             draw_upper_limits(ax, x[lim], obs[lim], label="upper limit")
         ax.set(yscale="log", ylabel="Paleointensity (µT)", xlabel="Record (id)")
+        plain_log_labels(ax, "y")
         ax.set_xticks(x, [str(r) for r in records], rotation=90)
         ax.legend(loc="best", ncols=2)
     return fig

@@ -4,9 +4,10 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from matplotlib.patches import Patch
 
 from ..plotstyle import (draw_upper_limits, model_color, model_linestyle, new_figure,
-                         reservoir_marker, style)
+                         plain_log_labels, reservoir_marker, style)
 from .data import Bands, BodyPoint, RecordPoint
 
 __all__ = ["field_profile_figure", "field_time_figure", "nearest_index"]
@@ -75,14 +76,21 @@ def _draw_body_distances(ax, records, by_body) -> None:
 
 
 def _legend(fig, axes) -> None:
-    """One legend (models, reservoirs, distance bars of every panel) above the panels."""
+    """One legend (models, band widths, reservoirs, distance bars of every panel) above the
+    panels."""
     handles = {}
     for ax in axes:
         for h, lab in zip(*ax.get_legend_handles_labels()):
             if not lab.startswith("_"):
                 handles.setdefault(lab, h)
+    # grey stand-ins for the two shades every model's band uses (alphas as in _draw_bands),
+    # listed right after the model lines
+    lines = {k: h for k, h in handles.items() if k.endswith("(median)")}
+    bands = {"68% band": Patch(color="0.3", alpha=0.3 + 0.15 * 0.7, lw=0),
+             "95% band": Patch(color="0.3", alpha=0.15, lw=0)}
+    handles = {**lines, **bands, **{k: h for k, h in handles.items() if k not in lines}}
     fig.legend(handles.values(), handles.keys(), loc="outside upper center",
-               ncols=min(len(handles), 4))
+               ncols=min(len(handles), 3))
 
 
 def field_profile_figure(bands_by_epoch: dict[float, dict[str, Bands]], bodies: list[BodyPoint],
@@ -118,6 +126,8 @@ def field_profile_figure(bands_by_epoch: dict[float, dict[str, Bands]], bodies: 
             _draw_body_distances(ax, mine, by_body)
             _draw_records(ax, mine, _fanned_distance(mine, by_body), reservoirs)
             ax.set(xscale="log", yscale="log", ylabel="Field B (µT)")
+            plain_log_labels(ax, "x")
+            plain_log_labels(ax, "y")
             ax.set_title(f"t = {epoch:g} Myr after CAI formation", loc="left")
         axes[-1, 0].set_xlabel("Heliocentric distance r (AU)")
         _legend(fig, axes[:, 0])
@@ -158,6 +168,7 @@ def field_time_figure(bands_by_distance: dict[float, dict[str, Bands]],
                           lambda r: [[r.age_myr[1] - r.age_myr[0]],
                                      [r.age_myr[2] - r.age_myr[1]]])
             ax.set(yscale="log", ylabel="Field B (µT)")
+            plain_log_labels(ax, "y")
             ax.set_title(f"r = {dist:g} AU", loc="left")
         axes[-1, 0].set_xlabel("Time after CAI formation t (Myr)")
         _legend(fig, axes[:, 0])
