@@ -359,7 +359,9 @@ def comparison_table(rows: list[dict], reference: str = "smooth") -> TextTable:
                      _fixed(r.get("ess_min"), 0)))
     notes = ["AIC, BIC: lower is better; ELPD(LOO), ln Z: higher is better; ΔELPD and ln B "
              f"are against {reference} (positive favours the model).",
-             "ELPD leaves out one parent body at a time."]
+             "ELPD leaves out one parent body at a time.",
+             "The verdict quotes 2 ln B, the Kass & Raftery (1995) scale: twice the ln B "
+             "column."]
     if unconverged:
         notes.append(f"* not converged: {', '.join(unconverged)} (treat with caution).")
     return TextTable(cols, tuple(body), caption="Model comparison", label="tab:comparison",

@@ -158,3 +158,17 @@ def test_comparison_figure_keeps_models_without_values():
     assert lo < 0 and hi > 2  # every model's row is inside the axis, with or without a value
     assert [t.get_text() for t in ax_z.texts] == ["ln Z not computed"] * 3
     assert [t.get_text() for t in ax_e.texts] == ["ΔELPD not available"]
+
+
+def test_log_axes_use_plain_numbers():
+    from diskfield.plotstyle import new_figure, plain_log_labels, style
+
+    with style():
+        fig, ax = new_figure()
+        ax.plot([1, 2], [2.0, 40.0])
+        ax.set(yscale="log", ylim=(2.0, 40.0))
+        plain_log_labels(ax, "y")
+        fig.canvas.draw()
+        labels = [t.get_text() for t in ax.get_yticklabels(minor=True) if t.get_text()]
+        labels += [t.get_text() for t in ax.get_yticklabels() if t.get_text()]
+    assert labels and all(float(lab) > 0 for lab in labels)  # "30", not "3×10¹"
