@@ -214,5 +214,8 @@ def partial_panel_weights(t: np.ndarray, n: int) -> np.ndarray:
     -------
     ndarray, shape t.shape + (n,)
     """
-    powers = np.asarray(t, float)[..., None] ** np.arange(1, n + 1)
+    t = np.asarray(t, float)[..., None]
+    # repeated products instead of a float power: pow is ~20x slower than a multiply
+    powers = np.repeat(t, n, axis=-1)
+    np.cumprod(powers, axis=-1, out=powers)
     return powers @ _antiderivative_coefficients(n)
