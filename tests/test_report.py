@@ -176,3 +176,23 @@ def test_report_of_a_tiny_real_fit(tmp_path):
     assert "KS-2 (Kessarine): suspect overprint, see text" in md
     parser = _parse(html)
     assert all((html.parent / ref).is_file() for ref in parser.refs)
+
+
+def test_demo_announces_each_model_build(capsys, tmp_path):
+    import time
+
+    from diskfield import build_model, read_compilation
+    from diskfield.commands.demo import _announcing_builder
+    from diskfield.comparison import ring_prior_file
+    from diskfield.resources import demo_dir
+
+    comp = read_compilation(demo_dir() / "demo_compilation.ecsv")
+    build = _announcing_builder(comp, time.perf_counter())
+    model = build("ring", [])
+    assert model.parameter_names == build_model(comp, profile="ring").parameter_names
+    path, _ = ring_prior_file(model, 0.5, tmp_path / "ring_priors_x0.5.toml")
+    scaled = build("ring", [path])
+    assert scaled.parameter_names == model.parameter_names
+    out = capsys.readouterr().out.splitlines()
+    assert out[0].endswith("ring: MCMC, criteria, evidence")
+    assert out[1].endswith("ring: evidence with the ring priors scaled by 0.5 (prior sensitivity)")

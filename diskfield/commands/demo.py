@@ -51,10 +51,12 @@ def run(args) -> int:
     comp = read_compilation(data / "demo_compilation.ecsv")
     print("== 1/4 check: the invented demo compilation")
     print(format_summary(summarize(comp)))
-    print(f"== 2/4 fit and compare {', '.join(DEMO_MODELS)} with evidence (seed {seed})")
+    print(f"== 2/4 fit and compare {', '.join(DEMO_MODELS)} with evidence (seed {seed}); "
+          "the longest step, several minutes")
     result = compare(comp, DEMO_MODELS, seed=seed, out=out, resume=args.resume,
                      settings=SamplerSettings(progress=not args.quiet),
-                     argv=["diskfield", "demo", *_argv(args)])
+                     argv=["diskfield", "demo", *_argv(args)],
+                     build=_announcing_builder(comp, start))
     print("== 3/4 compare with the declared truth of the scenario")
     truth = tomllib.loads((data / "truth.toml").read_text())
     recovery = truth_recovery(out, truth)
@@ -67,6 +69,22 @@ def run(args) -> int:
     print(f"report:  {html}")
     print(f"demo finished in {time.perf_counter() - start:.0f} s; outputs in {out}/")
     return 0
+
+
+def _announcing_builder(comp, start: float):
+    """The models ``compare`` would build (shipped priors, steady envelope, body spin), each
+    announced with the step it starts and the time elapsed [s] since ``start``, so that a user
+    watching a long run without progress bars sees where it is."""
+    from ..likelihood import build_model
+
+    def build(name, extra):
+        scale = Path(extra[-1]).stem.rsplit("_x", 1)[-1] if extra else ""
+        step = (f"evidence with the ring priors scaled by {scale} (prior sensitivity)" if extra
+                else "MCMC, criteria, evidence")
+        print(f"   [{time.perf_counter() - start:4.0f} s] {name}: {step}", flush=True)
+        return build_model(comp, profile=name, envelope="steady", spin="body",
+                           priors=[str(f) for f in extra] or None)
+    return build
 
 
 def _argv(args) -> list[str]:

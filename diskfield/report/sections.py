@@ -47,7 +47,7 @@ def verdict_blocks(ctx, run, ref: str, diffs: dict) -> list:
     items = [f"{m}: ΔELPD(LOO) vs {ref} = {d['elpd_diff']:.2f} ± {d['elpd_diff_se']:.2f} "
              f"(max Pareto k {d['pareto_k_max']:.2f}), from the saved per-body "
              "log-likelihoods" for m, d in diffs.items() if m != ref]
-    if items:
+    if items and not per_model:  # the verdict's own sentences already give ΔELPD
         blocks.append(Items(tuple(items)))
     return blocks
 
