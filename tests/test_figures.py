@@ -172,3 +172,20 @@ def test_log_axes_use_plain_numbers():
         labels = [t.get_text() for t in ax.get_yticklabels(minor=True) if t.get_text()]
         labels += [t.get_text() for t in ax.get_yticklabels() if t.get_text()]
     assert labels and all(float(lab) > 0 for lab in labels)  # "30", not "3×10¹"
+
+
+def test_pair_figure_marks_declared_truth_and_keeps_it_in_view():
+    from diskfield.figures.pairs import _TRUTH_COLOR
+
+    rng = np.random.default_rng(seed_for("pairs-truth"))
+    ring = {"ring_radius": rng.normal(4.0, 0.3, 400), "ring_width": rng.lognormal(0, 0.2, 400)}
+    # a true radius far outside the draws must still be on the axis
+    fig = F.pair_figure(ring, truth={"ring_radius": 8.0}, bins=10)
+    diag, off = fig.axes[0], fig.axes[2]
+    assert diag.get_xlim()[1] >= 8.0 and off.get_xlim()[1] >= 8.0
+    truth_lines = [ln for ax in fig.axes for ln in ax.get_lines()
+                   if ln.get_color() == _TRUTH_COLOR and ln.get_linestyle() == "--"]
+    assert len(truth_lines) == 2  # diagonal of ring_radius + its column below; none for width
+    assert [t.get_text() for t in fig.legends[0].get_texts()] == [
+        "declared truth (simulated data)"]
+    assert not F.pair_figure(ring, bins=10).legends

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import numpy as np
+from matplotlib.lines import Line2D
 
 from ..plotstyle import OKABE_ITO, new_figure, style
 
@@ -18,10 +19,26 @@ RING_PARAMETERS = {
 }
 
 
-def _limits(x: np.ndarray) -> tuple[float, float]:
+_TRUTH_COLOR = OKABE_ITO[2]
+
+
+def _limits(x: np.ndarray, truth: float | None = None) -> tuple[float, float]:
     lo, hi = np.percentile(x, [0.5, 99.5])
+    if truth is not None and np.isfinite(truth):  # keep a declared true value in view
+        lo, hi = min(lo, truth), max(hi, truth)
     pad = 0.05 * (hi - lo) if hi > lo else 0.5 * max(abs(lo), 1.0)
     return float(lo - pad), float(hi + pad)
+
+
+def _mark_truth(ax, tx, ty) -> None:
+    """Dashed lines at a declared true value (``ty`` None on the diagonal), a cross where two
+    meet."""
+    if tx is not None:
+        ax.axvline(tx, color=_TRUTH_COLOR, ls="--", lw=0.9)
+    if ty is not None:
+        ax.axhline(ty, color=_TRUTH_COLOR, ls="--", lw=0.9)
+    if tx is not None and ty is not None:
+        ax.plot([tx], [ty], marker="x", color=_TRUTH_COLOR, ms=5, mew=1.2)
 
 
 def _diagonal(ax, x, lim, bins) -> None:
@@ -40,7 +57,7 @@ def _off_diagonal(ax, x, y, xlim, ylim, bins) -> None:
 
 
 def pair_figure(samples: dict[str, np.ndarray], labels: dict[str, str] | None = None, *,
-                bins: int = 30, width_in: float = 5.0):
+                truth: dict[str, float] | None = None, bins: int = 30, width_in: float = 5.0):
     """Corner-style plot: marginal histograms on the diagonal, 2-D histograms below.
 
     Parameters
@@ -49,6 +66,9 @@ def pair_figure(samples: dict[str, np.ndarray], labels: dict[str, str] | None = 
         Parameter name -> posterior draws (any shape; flattened).
     labels : dict of str -> str, optional
         Axis label with unit per parameter (default :data:`RING_PARAMETERS`, else the name).
+    truth : dict of str -> float, optional
+        Declared true values (simulated data) drawn as dashed vermilion lines; parameters
+        absent from it get no line.
     bins : int
         Histogram bins per axis.
     width_in : float
@@ -62,7 +82,8 @@ def pair_figure(samples: dict[str, np.ndarray], labels: dict[str, str] | None = 
     labels = {**RING_PARAMETERS, **(labels or {})}
     names = list(samples)
     data = [np.ravel(np.asarray(samples[n], float)) for n in names]
-    lims = [_limits(x) for x in data]
+    true = [(truth or {}).get(n) for n in names]
+    lims = [_limits(x, t) for x, t in zip(data, true)]
     n = len(names)
     with style():
         fig, axes = new_figure(width_in, width_in, nrows=n, ncols=n, squeeze=False)
@@ -73,8 +94,10 @@ def pair_figure(samples: dict[str, np.ndarray], labels: dict[str, str] | None = 
                     ax.set_visible(False)
                 elif i == j:
                     _diagonal(ax, data[i], lims[i], bins)
+                    _mark_truth(ax, true[i], None)
                 else:
                     _off_diagonal(ax, data[j], data[i], lims[j], lims[i], bins)
+                    _mark_truth(ax, true[j], true[i])
                 if i == n - 1:
                     ax.set_xlabel(labels.get(names[j], names[j]))
                 else:
@@ -85,4 +108,7 @@ def pair_figure(samples: dict[str, np.ndarray], labels: dict[str, str] | None = 
                     ax.tick_params(labelleft=False)
         if n == 1:
             axes[0, 0].set_ylabel("Posterior density (arbitrary units)")
+        if any(t is not None for t in true):
+            fig.legend([Line2D([], [], color=_TRUTH_COLOR, ls="--", marker="x")],
+                       ["declared truth (simulated data)"], loc="upper right")
     return fig

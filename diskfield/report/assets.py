@@ -161,10 +161,22 @@ def pair_blocks(ctx, run) -> list:
         ring = {p: fit.idata.posterior[p].values for p in F.RING_PARAMETERS
                 if p in fit.idata.posterior.data_vars}
         if ring:
+            truth = _declared_truth(run, name)
             caption = (f"Ring parameters of model {name}: marginal posteriors (diagonal; median "
-                       "solid, 16th/84th percentiles dotted) and pairwise 2-D histograms.")
-            out.append(ctx.figure(F.pair_figure(ring), f"ring_parameters_{name}", caption))
+                       "solid, 16th/84th percentiles dotted) and pairwise 2-D histograms."
+                       + (" Dashed vermilion lines and crosses: the declared true values of "
+                          "the simulated compilation." if truth else ""))
+            out.append(ctx.figure(F.pair_figure(ring, truth=truth), f"ring_parameters_{name}",
+                                  caption))
     return out or [Para("No model of this run has ring parameters.")]
+
+
+def _declared_truth(run, model: str) -> dict:
+    """True parameter values from truth_recovery.json when ``model`` generated the data."""
+    if not run.truth or run.truth.get("true_model") != model:
+        return {}
+    return {str(r["parameter"]): float(r["true_value"]) for r in run.truth.get("rows") or []
+            if r.get("true_value") is not None}
 
 
 def predictive_blocks(ctx, run) -> list:
