@@ -4,6 +4,7 @@ Run from the repository top::
 
     python benchmarks/bench_demo.py             # defaults, as `diskfield demo`
     python benchmarks/bench_demo.py --keep DIR  # keep the outputs in DIR
+    python benchmarks/bench_demo.py --max-steps 500 --nlive 40   # smoke run, NOT the defaults
 
 Runs the demo's steps in the demo's order through the library (check, compare smooth, ring and
 two-ring with evidence and the prior-sensitivity runs, truth recovery, report) into a temporary
@@ -21,11 +22,13 @@ import os
 import tempfile
 import time
 import tomllib
+from dataclasses import replace
 from pathlib import Path
 
 from diskfield import comparison
 from diskfield.commands.check import summarize
 from diskfield.commands.demo import DEMO_MODELS
+from diskfield.evidence import DEFAULT_NLIVE
 from diskfield.records import read_compilation
 from diskfield.report import build_report
 from diskfield.resources import demo_dir
@@ -89,7 +92,7 @@ def _instrument(clock: _Clock) -> dict:
     return originals
 
 
-def run_demo(out: Path, seed: int, clock: _Clock):
+def run_demo(out: Path, seed: int, clock: _Clock, settings: SamplerSettings, nlive: int):
     """The demo's steps in order, each timed."""
     data = demo_dir()
     comp = clock.timed("check", lambda: _check(data))
@@ -97,8 +100,7 @@ def run_demo(out: Path, seed: int, clock: _Clock):
     try:
         w0, c0 = time.perf_counter(), time.process_time()
         result = comparison.compare(comp, DEMO_MODELS, seed=seed, out=out,
-                                    settings=SamplerSettings(progress=False),
-                                    argv=["bench_demo.py"])
+                                    settings=settings, nlive=nlive, argv=["bench_demo.py"])
         clock.add("compare total", time.perf_counter() - w0, time.process_time() - c0)
     finally:
         for name, fn in originals.items():
@@ -146,13 +148,23 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED)
     parser.add_argument("--keep", type=Path, help="write the outputs here instead of a temp dir")
+    parser.add_argument("--max-steps", type=int, help="MCMC step limit (smoke runs only)")
+    parser.add_argument("--nlive", type=int, default=DEFAULT_NLIVE,
+                        help="nested-sampling live points (smoke runs only)")
     args = parser.parse_args()
+    settings = SamplerSettings(progress=False)
+    if args.max_steps is not None:
+        settings = replace(settings, max_steps=args.max_steps)
+    non_default = args.max_steps is not None or args.nlive != DEFAULT_NLIVE
     clock = _Clock()
     with tempfile.TemporaryDirectory() as tmp:
         out = args.keep or Path(tmp) / "demo"
         w0, c0 = time.perf_counter(), time.process_time()
-        result = run_demo(out, args.seed, clock)
+        result = run_demo(out, args.seed, clock, settings, args.nlive)
         total_wall, total_cpu = time.perf_counter() - w0, time.process_time() - c0
+    if non_default:
+        print("SMOKE RUN with --max-steps/--nlive: NOT the demo's defaults; the timing below "
+              "does not measure the demo")
     _table(clock, result, total_wall, total_cpu)
 
 

@@ -41,6 +41,14 @@ _LATEX_SPECIALS = {
     "{": r"\{", "}": r"\}", "~": r"\textasciitilde{}", "^": r"\textasciicircum{}",
 }
 _LATEX_RE = re.compile("|".join(re.escape(k) for k in _LATEX_SPECIALS))
+# Non-ASCII symbols our own texts use: pdfLaTeX stops on Greek letters without extra packages,
+# so every table file is plain ASCII LaTeX (convention).
+_LATEX_UNICODE = {
+    "Δ": r"$\Delta$", "τ": r"$\tau$", "θ": r"$\theta$", "σ": r"$\sigma$", "µ": r"$\mu$",
+    "μ": r"$\mu$", "±": r"$\pm$", "×": r"$\times$", "≤": r"$\leq$", "≥": r"$\geq$",
+    "−": "$-$", "–": "--", "—": "---", "→": r"$\to$", "≈": r"$\approx$", "…": r"\ldots{}",
+}
+_UNICODE_RE = re.compile("|".join(re.escape(k) for k in _LATEX_UNICODE))
 
 #: LaTeX for units written in headers; other units are escaped text (convention).
 _LATEX_UNITS = {"uT": r"$\mu$T", "Msun/yr": r"$M_\odot$\,yr$^{-1}$",
@@ -126,10 +134,12 @@ class TextTable:
 def latex_escape(text) -> str:
     """Escape LaTeX's special characters ``\\ & % $ # _ { } ~ ^`` in plain text.
 
-    Newlines become spaces (a table cell is one line).
+    Newlines become spaces (a table cell is one line); the Greek letters and symbols of
+    diskfield's own texts (Δ, τ, ±, en dash, ...) become their LaTeX commands.
     """
     text = " ".join(str(text).splitlines())
-    return _LATEX_RE.sub(lambda m: _LATEX_SPECIALS[m.group(0)], text)
+    text = _LATEX_RE.sub(lambda m: _LATEX_SPECIALS[m.group(0)], text)
+    return _UNICODE_RE.sub(lambda m: _LATEX_UNICODE[m.group(0)], text)
 
 
 def markdown_escape(text) -> str:

@@ -149,3 +149,14 @@ def test_compilation_table_marks_exclusions_and_limits(run_dir):
     assert_balanced(tex)
     assert_escaped(tex)
     assert r"overprint \{suspected\} \textasciitilde{} 2 \$ rows" in tex
+
+
+def test_latex_escape_writes_our_symbols_as_latex_commands():
+    # pdfLaTeX without extra packages stops on Greek letters (common practice, no source)
+    assert latex_escape("ΔELPD ± SE, 50 τ, 16th–84th, 5 µT") == (
+        r"$\Delta$ELPD $\pm$ SE, 50 $\tau$, 16th--84th, 5 $\mu$T")
+    table = comparison_table([{"model": "smooth", "n_params": 3, "elpd_diff": 0.0,
+                               "elpd_diff_se": 0.0, "converged": False}])
+    for style in ("aastex", "tabular"):
+        tex = to_latex(table, style)
+        assert tex.isascii(), [c for c in tex if not c.isascii()]
