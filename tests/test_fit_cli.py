@@ -41,8 +41,9 @@ def tiny(tmp_path_factory):
 @pytest.fixture(scope="module")
 def fitted(tiny, tmp_path_factory):
     out = tmp_path_factory.mktemp("fit") / "smooth"
-    status = main(["fit", str(tiny), "--model", "smooth", "--max-steps", "100", "--out",
-                   str(out), "--seed", "5", "--quiet"])
+    # one optimiser start: the serial multi-start search is most of a short fit's cost
+    status = main(["fit", str(tiny), "--model", "smooth", "--max-steps", "100", "--starts", "1",
+                   "--out", str(out), "--seed", "5", "--quiet"])
     assert status == 0
     return out
 
@@ -96,8 +97,8 @@ def test_resume_extends_the_same_chain(fitted, tiny, tmp_path):
     import shutil
     copy = tmp_path / "resumed"
     shutil.copytree(fitted, copy)
-    status = main(["fit", str(tiny), "--model", "smooth", "--max-steps", "150", "--out",
-                   str(copy), "--seed", "5", "--quiet", "--resume"])
+    status = main(["fit", str(tiny), "--model", "smooth", "--max-steps", "150", "--starts", "1",
+                   "--out", str(copy), "--seed", "5", "--quiet", "--resume"])
     assert status == 0
     with h5py.File(copy / "checkpoint.h5") as f:
         longer = f["chain"][()]
@@ -108,8 +109,8 @@ def test_resume_with_another_seed_is_refused(fitted, tiny, tmp_path, capsys):
     import shutil
     copy = tmp_path / "other"
     shutil.copytree(fitted, copy)
-    status = main(["fit", str(tiny), "--model", "smooth", "--max-steps", "150", "--out",
-                   str(copy), "--seed", "6", "--quiet", "--resume"])
+    status = main(["fit", str(tiny), "--model", "smooth", "--max-steps", "150", "--starts", "1",
+                   "--out", str(copy), "--seed", "6", "--quiet", "--resume"])
     err = capsys.readouterr().err
     assert status == 2 and "seed" in err and "'5'" in err and "'6'" in err
     assert "Traceback" not in err and len(err.strip().splitlines()) == 1
@@ -118,7 +119,8 @@ def test_resume_with_another_seed_is_refused(fitted, tiny, tmp_path, capsys):
 def test_bad_options_are_one_line_errors(tiny, tmp_path, capsys):
     cases = [(["--model", "smooth", "--max-steps", "0"], "--max-steps"),
              (["--model", "nosuchprofile"], "nosuchprofile"),
-             (["--model", "smooth", "--spin", "sideways"], "sideways")]
+             (["--model", "smooth", "--spin", "sideways"], "sideways"),
+             (["--model", "smooth", "--starts", "0"], "--starts")]
     for extra, needle in cases:
         status = main(["fit", str(tiny), "--out", str(tmp_path / "x"), "--quiet", *extra])
         err = capsys.readouterr().err
@@ -128,8 +130,8 @@ def test_bad_options_are_one_line_errors(tiny, tmp_path, capsys):
 
 
 def test_strict_unconverged_fit_exits_2(tiny, tmp_path, capsys):
-    status = main(["fit", str(tiny), "--model", "smooth", "--max-steps", "50", "--strict",
-                   "--out", str(tmp_path / "s"), "--quiet"])
+    status = main(["fit", str(tiny), "--model", "smooth", "--max-steps", "50", "--starts", "1",
+                   "--strict", "--out", str(tmp_path / "s"), "--quiet"])
     assert status == 2 and "did not converge" in capsys.readouterr().err
     assert (tmp_path / "s" / "fit.json").is_file()  # results are kept for inspection
 
@@ -139,7 +141,7 @@ def test_compare_cli_writes_the_comparison(tiny, tmp_path, capsys):
     # test_comparison.py; here the real model, the CLI and the folder layout
     out = tmp_path / "cmp"
     status = main(["compare", str(tiny), "--models", "smooth,ring", "--max-steps", "100",
-                   "--no-evidence", "--out", str(out), "--quiet"])
+                   "--starts", "1", "--no-evidence", "--out", str(out), "--quiet"])
     assert status == 0
     printed = capsys.readouterr().out
     assert "No evidence was computed" in printed and "verdict.md" in printed

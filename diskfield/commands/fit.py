@@ -40,6 +40,9 @@ def add_model_options(parser) -> None:
     parser.add_argument("--max-steps", type=int, default=SamplerSettings.max_steps,
                         metavar="N", help="MCMC step limit; an unconverged chain is flagged "
                         f"(default: {SamplerSettings.max_steps})")
+    parser.add_argument("--starts", type=int, default=SamplerSettings.n_starts, metavar="N",
+                        help="local optimisations that place the walkers (default: "
+                        f"{SamplerSettings.n_starts})")
     parser.add_argument("--resume", action="store_true",
                         help="continue the run checkpointed in the output folder")
     parser.add_argument("--strict", action="store_true",
@@ -59,7 +62,10 @@ def sampler_settings(args) -> SamplerSettings:
     """SamplerSettings from the command-line options (validated)."""
     if args.max_steps is None or args.max_steps < 1:
         raise OptionError("--max-steps", args.max_steps, "a positive integer")
-    return SamplerSettings(max_steps=args.max_steps, progress=not args.quiet)
+    if args.starts is None or args.starts < 1:
+        raise OptionError("--starts", args.starts, "a positive integer")
+    return SamplerSettings(max_steps=args.max_steps, n_starts=args.starts,
+                           progress=not args.quiet)
 
 
 def run(args) -> int:
