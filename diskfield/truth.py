@@ -107,8 +107,8 @@ def write_truth_recovery(out_dir, recovery: dict) -> list[Path]:
           "| parameter | true | median | 90% interval | quantile of truth | inside 90% |",
           "|---|---|---|---|---|---|"]
     for r in recovery["rows"]:
-        md.append(f"| {r['parameter']} | {r['true_value']:.4g} | {r['median']:.4g} | "
-                  f"{r['q05']:.4g} – {r['q95']:.4g} | {r['posterior_quantile']:.2f} | "
+        md.append(f"| {r['parameter']} | {r['true_value']:.3g} | {r['median']:.3g} | "
+                  f"{r['q05']:.3g} – {r['q95']:.3g} | {r['posterior_quantile']:.2f} | "
                   f"{'yes' if r['inside_90'] else 'no'} |")
     if recovery["not_sampled"]:
         md += ["", "Not sampled by the fitted model (fixed or absent): "

@@ -95,7 +95,7 @@ def test_report_content(comparison_report):
     assert "ring vs smooth: positive, not decisive." in md
     assert (comparison_report.parent / "verdict.md").is_file()
     assert "## Declared truth" in md and "outside: ring_width" in md
-    assert "| ring_width | 0.3 | 0.8 | 0.55 to 1.05 | no |" in md
+    assert "| ring_width | 0.3 | 0.8 | 0.55 to 1.05 | 0.00 | no |" in md
     assert "Bayes factors depend on the priors" in md
     assert "steady relative to the parent body" in md       # field-direction assumption
     assert "authors' judgement" in md

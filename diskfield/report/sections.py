@@ -60,10 +60,12 @@ def truth_blocks(ctx, run) -> list:
     if rows:
         cols = (Column("parameter", "Parameter", align="l"), Column("true_value", "True"),
                 Column("median", "Median"), Column("interval_90", "90% interval"),
+                Column("posterior_quantile", "Posterior quantile of truth"),
                 Column("inside_90", "Inside 90%"))
-        body = tuple((str(r["parameter"]), _num(r.get("true_value"), ".4g"),
-                      _num(r.get("median"), ".4g"),
-                      f"{_num(r.get('q05'), '.4g')} to {_num(r.get('q95'), '.4g')}",
+        body = tuple((str(r["parameter"]), _num(r.get("true_value"), ".3g"),
+                      _num(r.get("median"), ".3g"),
+                      f"{_num(r.get('q05'), '.3g')} to {_num(r.get('q95'), '.3g')}",
+                      _num(r.get("posterior_quantile"), ".2f"),
                       "yes" if r.get("inside_90") else "no") for r in rows)
         table = TextTable(cols, body, caption=f"Declared truth against the posterior of model "
                           f"{t.get('true_model', '')}", label="tab:truth")
