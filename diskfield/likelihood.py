@@ -619,7 +619,10 @@ def _gather_last(a, idx):
 
 
 def _log_h_tail_at(mask, phi, z, var, lim, zbar, v, ln_k, has_det):
-    """:func:`_log_h_tail` at the distance nodes selected by ``mask`` (W, G, K) only, (M,)."""
+    """ln F below the tabulated range, at the distance nodes selected by ``mask`` (W, G, K).
+
+    Closed-form EMG (detections) plus the limits' ln Phi, evaluated only where needed; (M,).
+    """
     wi, gi, _ = np.nonzero(mask)
     ph = phi[mask]
     hd = has_det[wi, gi]
@@ -656,15 +659,6 @@ def _log_h(y, z, var, lim, zbar, v, ln_k, has_det):
     det = np.where(has_det[..., None], ln_k[..., None] - 0.5 * (zbar[..., None] - y) ** 2 / vv
                    - 0.5 * np.log(vv) - LN_SQRT_2PI, 0.0)
     arg = (z[None, :, None, :] - y[..., None]) / np.sqrt(var[:, :, None, :])
-    return det + np.where(lim[None, :, None, :], special.log_ndtr(arg), 0.0).sum(axis=-1)
-
-
-def _log_h_tail(phi, z, var, lim, zbar, v, ln_k, has_det):
-    """ln F below the tabulated range: closed-form EMG (detections) plus the limits' ln Phi."""
-    vv = np.where(has_det, v, 1.0)[..., None]
-    det = np.where(has_det[..., None], ln_k[..., None] + emg_logpdf(phi - zbar[..., None], vv),
-                   0.0)
-    arg = (z[None, :, None, :] - phi[..., None]) / np.sqrt(var[:, :, None, :])
     return det + np.where(lim[None, :, None, :], special.log_ndtr(arg), 0.0).sum(axis=-1)
 
 
@@ -810,51 +804,36 @@ def _envelope_features(p):
 
 def _integrand_aged(phi, b, var, ages, spin, s):
     """Records with ages on their priors (time-dependent envelope), shape (W, G, K)."""
-    lf = ages.log_factor[:, :, None]          # (W, G, 1, n, Q)
-    lw = ages.logw[:, :, None]
-    z = b.z[None, :, None, :, None]
-    vv = var[:, :, None, :, None]
-    det, lim = b.det[None, :, None, :], b.lim[None, :, None, :]
-    mu = phi[..., None, None] + lf            # ln B at (W, G, K, n, Q)
-    if spin == "none":
-        dens = quad.log_sum_exp(lw - 0.5 * (z - mu) ** 2 / vv - 0.5 * np.log(vv) - LN_SQRT_2PI)
-        cens = quad.log_sum_exp(lw + special.log_ndtr((z - mu) / np.sqrt(vv)))
-    elif spin == "record":
-        dens = quad.log_sum_exp(lw + emg_logpdf(mu - z, vv))
-        cens = quad.log_sum_exp(lw + emg_logsf(mu - z, vv))
-    else:
+    if spin == "body":
         return _integrand_aged_body_spin(phi, b, var, ages, s)
-    return np.where(det, dens, 0.0).sum(-1) + np.where(lim, cens, 0.0).sum(-1)
-
-
-#: Breakpoints of the aged Y rule around each record's lowest and highest recorded-field
-#: centre, in units of its sd (outer side Gaussian, inner side graded geometrically towards
-#: the other end, where the pushed age density can have a 1/x-like spike).
-_AGED_LO_GRADES = np.array([-9.0, -3.0, -1.0, 0.0, 1.0, 3.0, 9.0, 27.0])
-_AGED_HI_GRADES = -_AGED_LO_GRADES[::-1]
-_AGED_INTERIOR = np.array([0.25, 0.5, 0.75])
+    rec = _aged_records(b, var, ages, _compact(b.det), _compact(b.lim))
+    return _aged_records_log_prob(phi, rec, spin)
 
 
 def _integrand_aged_body_spin(phi, b, var, ages, s):
-    """Body-shared spin with ages, by the cumulative integral in the recorded log field.
+    """Body-shared spin with ages: X by nodes in the CDF of a truncated-normal proposal.
 
-    As in :func:`_integrand_body_spin_numeric`, F(phi) = e^-phi int_-inf^phi e^Y H(Y) dY with
-    Y = ln B - X, where now H(Y) = prod_i p_i(Y) and p_i is record i's density (detection) or
-    probability (limit) marginalised over its age prior by the age rule:
-    p_i(Y) = sum_q w_q N(z_i; Y + ln T(t_q), S_i^2) or sum_q w_q Phi((z_i - Y - ln T(t_q)) / S_i).
-    H does not depend on the distance, so it is tabulated once per (walker, body) instead of
-    at every (distance node, spin node) pair.
+    The proposal q(X) is the e^-X N(...) form of the steady case with each record's ln T
+    replaced by its age-prior mean and its variance added; the integrand f/q is exact
+    (importance mapping), so the proposal only has to cover where f lives. Detections and
+    limits are evaluated on compacted tables of the bodies that have them (a limit costs a
+    ``log_ndtr`` per distance, spin and age node).
     """
-    det_i, lim_i = _compact(b.det), _compact(b.lim)
-    rec = _aged_records(b, var, ages, det_i, lim_i)
-    breaks, y_a, has_det = _aged_y_breaks(rec, b, var, ages)
-    y, logw = quad.panel_rule(breaks, s.spin_panel_nodes)
-    lf = y + _log_h_aged(y, rec)
-    tail0 = np.where(has_det, -np.inf, y_a + _log_h_aged(y_a[..., None], rec)[..., 0])
-    out, below = _read_cumulative(phi, breaks, lf, logw, tail0, s.spin_panel_nodes)
-    if np.any(below):
-        out[below] = _aged_tail_at(below, phi, b, var, ages, rec)
-    return out
+    veff = var + ages.var_log_factor
+    zbar, v, _ = _detection_stats(b.z - ages.mean_log_factor, veff, b.det)
+    has = np.isfinite(v)[..., None]
+    vq = np.where(has, v[..., None], 1.0)
+    sd = np.sqrt(vq)
+    mu_q = phi - zbar[..., None] - vq
+    u, w = quad.gauss_legendre_unit(s.spin_nodes)
+    log_tail = special.log_ndtr(mu_q / sd)
+    xq = mu_q[..., None] - sd[..., None] * special.ndtri_exp(log_tail[..., None] + np.log1p(-u))
+    x = np.where(has[..., None], xq, -np.log1p(-u))   # (W, G, K, Q_x)
+    log_q = np.where(has[..., None], -0.5 * ((x - mu_q[..., None]) / sd[..., None]) ** 2
+                     - np.log(sd[..., None]) - LN_SQRT_2PI - log_tail[..., None], -x)
+    rec = _aged_records(b, var, ages, _compact(b.det), _compact(b.lim))
+    log_f = -x + _aged_records_log_prob(phi[..., None] - x, rec, spin="none")
+    return quad.log_sum_exp(log_f - log_q + np.log(w), axis=-1)
 
 
 def _compact(mask):
@@ -865,123 +844,54 @@ def _compact(mask):
 
 
 def _aged_records(b, var, ages, det_i, lim_i):
-    """Detections and limits compacted per body, each with (W, G, M, Q) age terms."""
+    """Detections and limits compacted per body: z (1, G, M, 1), variances (W, G, M, 1), age
+    log factors and ln weights (W, G, M, Q), mask (G, M) and the rows (bodies) that have any."""
     out = {}
     for key, (order, mask) in (("det", det_i), ("lim", lim_i)):
         pick = lambda a: np.take_along_axis(a, order[None, ..., None], axis=2)  # noqa: E731
-        vv = np.take_along_axis(var, order[None], axis=-1)
-        out[key] = dict(z=np.take_along_axis(b.z, order, axis=1)[None, :, None, :, None],
-                        lf=pick(ages.log_factor)[:, :, None], lw=pick(ages.logw)[:, :, None],
-                        var=vv[:, :, None, :, None], mask=mask[None, :, None, :],
+        out[key] = dict(z=np.take_along_axis(b.z, order, axis=1)[None, ..., None],
+                        var=np.take_along_axis(var, order[None], axis=-1)[..., None],
+                        lf=pick(ages.log_factor), lw=pick(ages.logw), mask=mask,
                         rows=np.flatnonzero(mask.any(axis=1)))
     return out
 
 
-def _log_h_aged(y, rec):
-    """ln H(Y) of each body (W, G, Q_y): the age-marginalised records' product at Y.
+def _aged_records_log_prob(m, rec, spin):
+    """Sum over each body's records of ln p(record | ln B = m + ln T(t)) on the age rule.
 
-    Each kind is evaluated only on the bodies that have it (limits cost a ``log_ndtr`` per
-    record, age node and Y node).
+    Parameters
+    ----------
+    m : ndarray, shape (W, G) + E
+        ln B before the envelope factor (E: any extra node axes).
+    rec : dict
+        From :func:`_aged_records`.
+    spin : {"none", "record"}
+        ``"record"``: each record's own spin offset marginalised in closed form (EMG).
+
+    Returns
+    -------
+    ndarray, shape (W, G) + E
     """
-    out = np.zeros(y.shape)
-    d, li = rec["det"], rec["lim"]
-    rows = d["rows"]
-    if len(rows):
-        m = d["z"][:, rows] - d["lf"][:, rows] - y[:, rows, :, None, None]
-        vv = d["var"][:, rows]
-        dens = quad.log_sum_exp(d["lw"][:, rows] - 0.5 * m * m / vv, axis=-1) \
-            - 0.5 * np.log(vv[..., 0]) - LN_SQRT_2PI
-        out[:, rows] += np.where(d["mask"][:, rows], dens, 0.0).sum(-1)
-    rows = li["rows"]
-    if len(rows):
-        m = li["z"][:, rows] - li["lf"][:, rows] - y[:, rows, :, None, None]
-        cens = quad.log_sum_exp(li["lw"][:, rows] + special.log_ndtr(
-            m / np.sqrt(li["var"][:, rows])), axis=-1)
-        out[:, rows] += np.where(li["mask"][:, rows], cens, 0.0).sum(-1)
-    return out
-
-
-def _aged_y_breaks(rec, b, var, ages):
-    """Sorted Y breakpoints (W, G, B), range start (W, G) and has-detections mask (W, G)."""
-    lo_c, hi_c, sd, used = [], [], [], []
+    out = np.zeros(m.shape)
+    extra = m.ndim - 2
     for key in ("det", "lim"):
         r = rec[key]
-        finite = np.isfinite(r["lw"][:, :, 0])
-        lf = r["lf"][:, :, 0]
-        lo_c.append(r["z"][:, :, 0, :, 0] - np.max(np.where(finite, lf, -np.inf), axis=-1))
-        hi_c.append(r["z"][:, :, 0, :, 0] - np.min(np.where(finite, lf, np.inf), axis=-1))
-        sd.append(np.sqrt(r["var"][:, :, 0, :, 0]))
-        used.append(np.broadcast_to(r["mask"][:, :, 0], lo_c[-1].shape))
-    has_det = np.any(used[0], axis=-1)
-    y_a, y_b = _aged_range(lo_c, hi_c, sd, used, has_det)
-    c_lo, c_hi = np.concatenate(lo_c, -1), np.concatenate(hi_c, -1)
-    s_all, u_all = np.concatenate(sd, -1), np.concatenate(used, -1)
-    lo_pts = c_lo[..., None] + s_all[..., None] * _AGED_LO_GRADES
-    hi_pts = c_hi[..., None] + s_all[..., None] * _AGED_HI_GRADES
-    # inner-side grades stop at the other end of the record's centres
-    lo_pts = np.where(_AGED_LO_GRADES > 0, np.minimum(lo_pts, c_hi[..., None]), lo_pts)
-    hi_pts = np.where(_AGED_HI_GRADES < 0, np.maximum(hi_pts, c_lo[..., None]), hi_pts)
-    mid = c_lo[..., None] + (c_hi - c_lo)[..., None] * _AGED_INTERIOR
-    pts = np.concatenate([lo_pts, hi_pts, mid], axis=-1)
-    pts = np.where(u_all[..., None], pts, y_a[..., None, None]).reshape(y_a.shape + (-1,))
-    zbar, v, _ = _detection_stats(b.z - ages.mean_log_factor, var + ages.var_log_factor, b.det)
-    sv = np.sqrt(np.where(has_det, v, 1.0))
-    peak = np.where(has_det, zbar + np.where(has_det, v, 0.0), y_a)
-    pts = np.concatenate([pts, peak[..., None] + sv[..., None] * _Y_GRADES,
-                          y_a[..., None], y_b[..., None]], axis=-1)
-    pts = np.clip(pts, y_a[..., None], y_b[..., None])
-    return _distinct_sorted(pts, y_b), y_a, has_det
-
-
-def _distinct_sorted(pts, end):
-    """Sorted breakpoints with repeats dropped, padded with ``end`` (W, G) to a common length.
-
-    Clipped grades repeat many points; every zero-width panel would still cost its nodes.
-    """
-    pts = np.sort(pts, axis=-1)
-    dup = np.zeros(pts.shape, bool)
-    dup[..., 1:] = pts[..., 1:] <= pts[..., :-1]
-    pts = np.sort(np.where(dup, np.inf, pts), axis=-1)
-    n = max(int((~dup).sum(axis=-1).max()), 2)
-    pts = pts[..., :n]
-    return np.where(np.isinf(pts), end[..., None], pts)
-
-
-def _aged_range(lo_c, hi_c, sd, used, has_det):
-    """Y range (W, G) outside which H is negligible (< e^-200 of the detections' product)
-    or constant (limits only: all pass below, all fail above)."""
-    lo_d = np.where(used[0], lo_c[0] - 20.0 * sd[0], -np.inf)
-    hi_d = np.where(used[0], hi_c[0] + 20.0 * sd[0], np.inf)
-    a_det, b_det = lo_d.max(-1), hi_d.min(-1)
-    # inconsistent detections (empty intersection): fall back to the union of their ranges
-    bad = a_det >= b_det
-    a_det = np.where(bad, np.where(used[0], lo_c[0] - 20.0 * sd[0], np.inf).min(-1), a_det)
-    b_det = np.where(bad, np.where(used[0], hi_c[0] + 20.0 * sd[0], -np.inf).max(-1), b_det)
-    a_lim = np.where(used[1], lo_c[1] - 20.0 * sd[1], np.inf).min(-1)
-    b_lim = np.where(used[1], hi_c[1] + 20.0 * sd[1], -np.inf).max(-1)
-    return np.where(has_det, a_det, a_lim), np.where(has_det, b_det, b_lim)
-
-
-def _aged_tail_at(mask, phi, b, var, ages, rec):
-    """ln F below the tabulated range at the nodes in ``mask`` (M,).
-
-    Limits only: every limit's age-marginal probability at phi (the spin offset cannot lower
-    them further). With detections the body is > 20 sd from them (a far tail): the
-    moment-matched EMG of the detections (ages' ln T mean and variance added) keeps the
-    values finite and ordered, times the limits' probabilities at phi.
-    """
-    wi, gi, _ = np.nonzero(mask)
-    ph = phi[mask]
-    zbar, v, ln_k = _detection_stats(b.z - ages.mean_log_factor, var + ages.var_log_factor,
-                                     b.det)
-    hd = np.isfinite(v[wi, gi])
-    vv = np.where(hd, v[wi, gi], 1.0)
-    det = np.where(hd, ln_k[wi, gi] + emg_logpdf(ph - zbar[wi, gi], vv), 0.0)
-    li = rec["lim"]
-    m = li["z"][0, gi, 0] - li["lf"][wi, gi, 0] - ph[:, None, None]
-    cens = quad.log_sum_exp(li["lw"][wi, gi, 0] + special.log_ndtr(
-        m / np.sqrt(li["var"][wi, gi, 0])), axis=-1)
-    return det + np.where(li["mask"][0, gi, 0], cens, 0.0).sum(-1)
+        rows = r["rows"]
+        if not len(rows):
+            continue
+        grow = lambda a: np.expand_dims(a[:, rows], tuple(range(2, 2 + extra)))  # noqa: E731
+        z, vv, lf, lw = grow(r["z"]), grow(r["var"]), grow(r["lf"]), grow(r["lw"])
+        d = m[:, rows][..., None, None] + lf - z      # ln B - z at (W, Gr, E, M, Q)
+        if spin == "record":
+            term = emg_logpdf(d, vv) if key == "det" else emg_logsf(d, vv)
+        elif key == "det":
+            term = -0.5 * d * d / vv - 0.5 * np.log(vv) - LN_SQRT_2PI
+        else:
+            term = special.log_ndtr(-d / np.sqrt(vv))
+        lp = quad.log_sum_exp(lw + term, axis=-1)
+        mask = np.expand_dims(r["mask"][rows], tuple(range(1, 1 + extra)))
+        out[:, rows] += np.where(mask, lp, 0.0).sum(-1)
+    return out
 
 
 # ---------------------------------------------------------------------- factory
