@@ -882,13 +882,16 @@ def _aged_records_log_prob(m, rec, spin):
         grow = lambda a: np.expand_dims(a[:, rows], tuple(range(2, 2 + extra)))  # noqa: E731
         z, vv, lf, lw = grow(r["z"]), grow(r["var"]), grow(r["lf"]), grow(r["lw"])
         d = m[:, rows][..., None, None] + lf - z      # ln B - z at (W, Gr, E, M, Q)
+        const = 0.0
         if spin == "record":
             term = emg_logpdf(d, vv) if key == "det" else emg_logsf(d, vv)
         elif key == "det":
-            term = -0.5 * d * d / vv - 0.5 * np.log(vv) - LN_SQRT_2PI
+            # the normalisation does not depend on the age node: added after the sum
+            term = d * d * (-0.5 / vv)
+            const = -0.5 * np.log(vv[..., 0]) - LN_SQRT_2PI
         else:
-            term = special.log_ndtr(-d / np.sqrt(vv))
-        lp = quad.log_sum_exp(lw + term, axis=-1)
+            term = special.log_ndtr(d * (-1.0 / np.sqrt(vv)))
+        lp = quad.log_sum_exp(lw + term, axis=-1) + const
         mask = np.expand_dims(r["mask"][rows], tuple(range(1, 1 + extra)))
         out[:, rows] += np.where(mask, lp, 0.0).sum(-1)
     return out
