@@ -70,10 +70,19 @@ class atomic_path:
 
     def __exit__(self, exc_type, exc, tb):
         if exc_type is None:
+            # mkstemp makes the file private (0600); give results the permissions any
+            # ordinary new file would have, so collaborators can read an output folder.
+            os.chmod(self.tmp, 0o666 & ~_umask())
             os.replace(self.tmp, self.path)
         else:
             self.tmp.unlink(missing_ok=True)
         return False
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def sha256_file(path) -> str:

@@ -216,3 +216,17 @@ def test_resume_after_sigkill_gives_the_same_chain(tmp_path):
                                 checkpoint=tmp_path / "ref.h5").chain
     assert resumed.shape == (target, 16, 2)
     assert np.array_equal(resumed, uninterrupted)
+
+
+def test_atomic_writes_get_ordinary_file_permissions(tmp_path):
+    # common practice, no source: a new output file is readable like any file the user creates
+    import os
+
+    from diskfield.manifest import write_atomic
+
+    mask = os.umask(0o022)
+    try:
+        path = write_atomic(tmp_path / "out.txt", "x")
+    finally:
+        os.umask(mask)
+    assert (path.stat().st_mode & 0o777) == 0o644 and path.read_text() == "x"
