@@ -24,6 +24,7 @@ __all__ = [
     "TextTable",
     "latex_escape",
     "markdown_escape",
+    "plain_cell",
     "to_latex",
     "to_markdown",
     "to_csv",
@@ -242,14 +243,15 @@ def _tabular(table, heads, body, align) -> str:
     return "\n".join(lines) + "\n"
 
 
-def _plain_cell(cell) -> str:
+def plain_cell(cell, minus: str = "-") -> str:
+    """A cell as plain text: ``value ± err`` or ``value +plus/-minus`` (``minus``: the sign)."""
     if not isinstance(cell, Measure):
         return str(cell)
     if not cell.minus and not cell.plus:
         return cell.value
     if cell.symmetric:
         return f"{cell.value} ± {cell.minus}"
-    return f"{cell.value} +{cell.plus}/-{cell.minus}"
+    return f"{cell.value} +{cell.plus}/{minus}{cell.minus}"
 
 
 def to_markdown(table: TextTable) -> str:
@@ -261,7 +263,7 @@ def to_markdown(table: TextTable) -> str:
     lines.append("| " + " | ".join(markdown_escape(h) for h in heads) + " |")
     lines.append("|" + "|".join("---" for _ in heads) + "|")
     for row in table.rows:
-        lines.append("| " + " | ".join(markdown_escape(_plain_cell(c)) for c in row) + " |")
+        lines.append("| " + " | ".join(markdown_escape(plain_cell(c)) for c in row) + " |")
     if table.notes:
         lines += [""] + [markdown_escape(n) for n in table.notes]
     return "\n".join(lines) + "\n"

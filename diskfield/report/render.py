@@ -8,7 +8,9 @@ from __future__ import annotations
 import html
 from dataclasses import dataclass, field
 
-from ..tables import Measure, TextTable, to_markdown
+from ..tables import TextTable, plain_cell, to_markdown
+
+_MINUS = "\u2212"  # typographic minus for asymmetric errors in HTML
 
 __all__ = ["Para", "Items", "Pre", "Links", "Figure", "TableBlock", "Section",
            "to_markdown_page", "to_html_page"]
@@ -108,21 +110,11 @@ pre { background: #f4f4f4; padding: 0.6em; overflow-x: auto; font-size: 0.85em; 
 """
 
 
-def _cell_text(cell) -> str:
-    if not isinstance(cell, Measure):
-        return str(cell)
-    if not cell.minus and not cell.plus:
-        return cell.value
-    if cell.symmetric:
-        return f"{cell.value} ± {cell.minus}"
-    return f"{cell.value} +{cell.plus}/−{cell.minus}"
-
-
 def _html_table(block: TableBlock) -> str:
     t, e = block.table, html.escape
     head = "".join(f"<th>{e(c.label)}{' (' + e(c.unit) + ')' if c.unit else ''}</th>"
                    for c in t.columns)
-    rows = "".join("<tr>" + "".join(f"<td>{e(_cell_text(c))}</td>" for c in r) + "</tr>"
+    rows = "".join("<tr>" + "".join(f"<td>{e(plain_cell(c, minus=_MINUS))}</td>" for c in r) + "</tr>"
                    for r in t.rows)
     notes = "".join(f"<p class=\"notes\">{e(n)}</p>" for n in t.notes)
     links = ", ".join(f"<a href=\"{e(f)}\">{e(f.split('/')[-1])}</a>" for f in block.files)
