@@ -55,7 +55,7 @@ def _nodes(model, theta):
     r, _ = model.body_distance_posterior(theta)
     k_age = 1
     if model.envelope.time_dependent:
-        from diskfield.likelihood import _age_rule
+        from diskfield.aged import _age_rule
 
         rule = _age_rule(model._ages, model.envelope, model.params(theta), model.settings)
         k_age = rule.logw.shape[-1]
