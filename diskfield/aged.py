@@ -141,25 +141,100 @@ def _integrand_aged_body_spin(phi, b, var, ages, s):
 
     The proposal q(X) is the e^-X N(...) form of the steady case with each record's ln T
     replaced by its age-prior mean and its variance added; the integrand f/q is exact
-    (importance mapping), so the proposal only has to cover where f lives. Detections and
-    limits are evaluated on compacted tables of the bodies that have them (a limit costs a
-    ``log_ndtr`` per distance, spin and age node).
+    (importance mapping), so the proposal only has to cover where f lives.
+
+    The work is done body by body on the distinct distance nodes only (zero-width distance
+    panels repeat one node; their values are copied), with each body's own detections,
+    limits and age nodes of non-zero weight, in chunks of points sized for the cache: the
+    same sums as one (W, G, K, Q_x, M, Q_age) array, without materialising it.
     """
     veff = var + ages.var_log_factor
     zbar, v, _ = _detection_stats(b.z - ages.mean_log_factor, veff, b.det)
-    has = np.isfinite(v)[..., None]
-    vq = np.where(has, v[..., None], 1.0)
-    sd = np.sqrt(vq)
-    mu_q = phi - zbar[..., None] - vq
-    u, w = quad.gauss_legendre_unit(s.spin_nodes)
+    out = np.full(phi.shape, -np.inf)
+    first = np.ones(phi.shape, bool)
+    first[..., 1:] = phi[..., 1:] != phi[..., :-1]
+    for g in range(phi.shape[1]):
+        wi, ki = np.nonzero(first[:, g])
+        out[wi, g, ki] = _body_spin_points(phi[wi, g, ki], wi, g, b, var, ages,
+                                           zbar[:, g], v[:, g], s.spin_nodes)
+    # copy each distinct node's value onto its repeats (runs of equal phi along K)
+    src = np.where(first, np.arange(phi.shape[-1]), 0)
+    np.maximum.accumulate(src, axis=-1, out=src)
+    return np.take_along_axis(out, src, axis=-1)
+
+
+#: Elements (points x spin nodes x records x age nodes) per chunk of the aged body-spin sums:
+#: temporaries of ~2 MB stay in the cache (convention, measured in benchmarks/bench_aged.py).
+_CHUNK_ELEMENTS = 1 << 18
+
+
+def _body_spin_points(ph, wi, g, b, var, ages, zbar, v, n_spin):
+    """ln F at the points ``ph`` (P,) of body ``g``, walker of each point ``wi`` (P,)."""
+    has = np.isfinite(v[wi])
+    vq = np.where(has, v[wi], 1.0)
+    sd = np.sqrt(vq)[:, None]
+    mu_q = (ph - np.where(has, zbar[wi], 0.0) - vq)[:, None]
+    u, w = quad.gauss_legendre_unit(n_spin)
     log_tail = special.log_ndtr(mu_q / sd)
-    xq = mu_q[..., None] - sd[..., None] * special.ndtri_exp(log_tail[..., None] + np.log1p(-u))
-    x = np.where(has[..., None], xq, -np.log1p(-u))   # (W, G, K, Q_x)
-    log_q = np.where(has[..., None], -0.5 * ((x - mu_q[..., None]) / sd[..., None]) ** 2
-                     - np.log(sd[..., None]) - LN_SQRT_2PI - log_tail[..., None], -x)
-    rec = _aged_records(b, var, ages, _compact(b.det), _compact(b.lim))
-    log_f = -x + _aged_records_log_prob(phi[..., None] - x, rec, spin="none")
-    return quad.log_sum_exp(log_f - log_q + np.log(w), axis=-1)
+    x = np.where(has[:, None], mu_q - sd * special.ndtri_exp(log_tail + np.log1p(-u)),
+                 -np.log1p(-u))                                      # (P, Q_x)
+    log_q = np.where(has[:, None], -0.5 * ((x - mu_q) / sd) ** 2 - np.log(sd) - LN_SQRT_2PI
+                     - log_tail, -x)
+    log_f = -x - log_q + np.log(w)
+    kinds = [_body_records(b, var, ages, g, key) for key in ("det", "lim")]
+    for rec in kinds:
+        if rec is None:
+            continue
+        size = n_spin * rec["lf"].shape[1] * rec["lf"].shape[2]
+        step = max(1, _CHUNK_ELEMENTS // size)
+        for c in range(0, len(ph), step):
+            sl = slice(c, c + step)
+            log_f[sl] += _records_sum(ph[sl, None] - x[sl], wi[sl], rec)
+    return quad.log_sum_exp(log_f, axis=-1)
+
+
+def _body_records(b, var, ages, g, key):
+    """One body's detections or limits: z (M,), variances (W, M) and its age nodes of
+    non-zero weight, laid out age-node first: ln T and ln weights (Q, W, M); None if none."""
+    idx = np.flatnonzero(b.det[g] if key == "det" else b.lim[g])
+    if not len(idx):
+        return None
+    lw = ages.logw[:, g, idx]                                       # (W, M, Q)
+    order = np.argsort(~np.isfinite(lw), axis=-1, kind="stable")
+    n_q = max(int(np.isfinite(lw).sum(axis=-1).max()), 1)
+    order = order[..., :n_q]
+    lf = np.take_along_axis(ages.log_factor[:, g, idx], order, axis=-1)
+    lw = np.take_along_axis(lw, order, axis=-1)
+    vv = var[:, g, idx]
+    return dict(det=key == "det", z=b.z[g, idx], var=vv,
+                lf=np.ascontiguousarray(np.moveaxis(lf, -1, 0)),
+                lw=np.ascontiguousarray(np.moveaxis(lw, -1, 0)))
+
+
+def _records_sum(m, wi, rec):
+    """sum over the records of ln p(record | ln B = m + ln T(t)) on the age rule, (P, Q_x).
+
+    Age nodes lead the temporaries, so the log-sum over them is a reduction over the first
+    axis (contiguous slabs) and every step is done in place.
+    """
+    vv = rec["var"][wi][:, None, :]                                 # (P, 1, M)
+    d = (m[..., None] - rec["z"])[None] + rec["lf"][:, wi, None, :]  # (Q, P, Q_x, M)
+    if rec["det"]:
+        np.multiply(d, d, out=d)
+        d *= -0.5 / vv
+        const = -0.5 * np.log(vv) - LN_SQRT_2PI
+    else:
+        d *= -1.0 / np.sqrt(vv)
+        d = special.log_ndtr(d)
+        const = 0.0
+    d += rec["lw"][:, wi, None, :]
+    top = d.max(axis=0)
+    top = np.where(np.isfinite(top), top, 0.0)
+    d -= top
+    np.exp(d, out=d)
+    with np.errstate(divide="ignore"):
+        lp = np.log(d.sum(axis=0)) + top + const
+    return lp.sum(axis=-1)
 
 
 def _compact(mask):
