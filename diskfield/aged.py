@@ -214,26 +214,50 @@ def _body_records(b, var, ages, g, key):
 def _records_sum(m, wi, rec):
     """sum over the records of ln p(record | ln B = m + ln T(t)) on the age rule, (P, Q_x).
 
-    Age nodes lead the temporaries, so the log-sum over them is a reduction over the first
-    axis (contiguous slabs) and every step is done in place.
+    Age nodes lead the temporaries, so the sum over them is a reduction over the first axis
+    (contiguous slabs) and every step is done in place.
     """
     vv = rec["var"][wi][:, None, :]                                 # (P, 1, M)
     d = (m[..., None] - rec["z"])[None] + rec["lf"][:, wi, None, :]  # (Q, P, Q_x, M)
-    if rec["det"]:
-        np.multiply(d, d, out=d)
-        d *= -0.5 / vv
-        const = -0.5 * np.log(vv) - LN_SQRT_2PI
-    else:
-        d *= -1.0 / np.sqrt(vv)
-        d = special.log_ndtr(d)
-        const = 0.0
-    d += rec["lw"][:, wi, None, :]
+    lw = rec["lw"][:, wi, None, :]
+    if not rec["det"]:
+        return _limits_sum(d, vv, lw)
+    np.multiply(d, d, out=d)
+    d *= -0.5 / vv
+    d += lw
     top = d.max(axis=0)
     top = np.where(np.isfinite(top), top, 0.0)
     d -= top
     np.exp(d, out=d)
     with np.errstate(divide="ignore"):
-        lp = np.log(d.sum(axis=0)) + top + const
+        lp = np.log(d.sum(axis=0)) + top - 0.5 * np.log(vv) - LN_SQRT_2PI
+    return lp.sum(axis=-1)
+
+
+#: Below this age-summed probability a limit is re-summed in logs (``ndtr`` underflows near
+#: 1e-308; convention).
+_LINEAR_FLOOR = 1e-280
+
+
+def _limits_sum(d, vv, lw):
+    """Limits' ln sum_q w_q Phi(-d_q / S), summed over records, (P, Q_x).
+
+    Summed in linear space with ``ndtr`` (half the cost of ``log_ndtr``, relative accuracy
+    kept in the lower tail since ``ndtr`` is computed from ``erfc``); only the entries whose
+    sum falls below ``_LINEAR_FLOOR`` are re-summed with ``log_ndtr`` in logs.
+    """
+    d *= -1.0 / np.sqrt(vv)
+    prob = special.ndtr(d)
+    prob *= np.exp(lw)
+    tot = prob.sum(axis=0)
+    with np.errstate(divide="ignore"):
+        lp = np.log(tot)
+    low = tot < _LINEAR_FLOOR
+    if np.any(low):
+        idx = np.nonzero(low)
+        lt = special.log_ndtr(d[(slice(None),) + idx]) + np.broadcast_to(lw, d.shape)[
+            (slice(None),) + idx]
+        lp[idx] = quad.log_sum_exp(lt, axis=0)
     return lp.sum(axis=-1)
 
 
