@@ -18,6 +18,10 @@ Run from the repository top::
    is shorter than 50 τ the τ estimate is a lower bound and the latent ESS/s an upper bound
    (flagged in the output).
 
+3. Nested sampling of each demo model with dynesty's one-point-at-a-time likelihood calls
+   against the batched proposals of ``diskfield.nsbatch`` (same seed and settings):
+   wall time, likelihood points per second and the speed-up (``--only evidence``).
+
 Prints figures; asserts nothing.
 """
 from __future__ import annotations
@@ -133,9 +137,29 @@ def bench_ess(seed: int, steps: int) -> None:
     print(f"ratio marginalised / latent: {ess_m / ess_l:.1f}x (target >= 50x)")
 
 
+def bench_evidence(seed: int, models) -> None:
+    from diskfield.evidence import nested_evidence
+
+    comp = diskfield.read_compilation(demo_dir() / "demo_compilation.ecsv")
+    print("nested sampling (nlive 100, dlogz 0.5), plain one-point calls vs batched proposals")
+    for name in models:
+        model = diskfield.build_model(comp, profile=name)
+        line = []
+        runs = {}
+        for batch in (False, True):
+            ev = nested_evidence(model, seed=seed, batch=batch)
+            runs[batch] = ev
+            line.append(f"{'batched' if batch else 'plain'} {ev.wall_time_s:6.1f} s, "
+                        f"ln Z {ev.ln_evidence:.2f} +- {ev.ln_evidence_err:.2f}, "
+                        f"{ev.n_calls} calls ({ev.n_evaluated} points evaluated, "
+                        f"{ev.n_evaluated / ev.wall_time_s:.0f} points/s)")
+        print(f"  {name:9s} " + "; ".join(line))
+        print(f"  {name:9s} speed-up {runs[False].wall_time_s / runs[True].wall_time_s:.1f}x")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--only", choices=("compare", "ess"), default=None)
+    parser.add_argument("--only", choices=("compare", "ess", "evidence"), default=None)
     parser.add_argument("--seed", type=int, default=1)
     parser.add_argument("--steps", type=int, default=2000,
                         help="marginalised-model steps (the latent model runs 10x as many)")
@@ -144,6 +168,8 @@ def main() -> None:
     args = parser.parse_args()
     if args.only in (None, "ess"):
         bench_ess(args.seed, args.steps)
+    if args.only in (None, "evidence"):
+        bench_evidence(args.seed, ("smooth", "ring", "two-ring"))
     if args.only in (None, "compare"):
         bench_compare(args.seed, args.max_steps)
 

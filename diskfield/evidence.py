@@ -17,13 +17,15 @@ from __future__ import annotations
 
 import time
 import warnings
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 import numpy as np
 from scipy import stats
 
-__all__ = ["Evidence", "nested_evidence", "SavageDickey", "savage_dickey",
+from . import nsbatch
+
+__all__ = ["Evidence", "NestedDraws", "nested_evidence", "SavageDickey", "savage_dickey",
            "DEFAULT_NLIVE", "DEFAULT_DLOGZ"]
 
 #: Live points. With a likelihood of ~1 ms per 64-walker call the three-model demo
@@ -42,7 +44,28 @@ DEFAULT_DLOGZ = 0.5
 _BOUND_SETTINGS = {"bound": "multi", "bootstrap": 0, "enlarge": 1.25}
 
 # dynesty wants finite log-likelihoods; this is far below any real value.
-_LOGL_FLOOR = -1e300
+_LOGL_FLOOR = nsbatch.LOGL_FLOOR
+# Seconds between dynesty checkpoints (dynesty's own default; convention).
+_CHECKPOINT_EVERY = 60.0
+# dynesty picks its uniform sampler below 10 dimensions (``sample="auto"``); only that
+# sampler's proposals are batched (diskfield.nsbatch).
+_UNIFORM_MAX_NDIM = 9
+
+
+@dataclass(frozen=True)
+class NestedDraws:
+    """A nested-sampling run's dead and final live points with their posterior weights.
+
+    Attributes
+    ----------
+    theta : ndarray, shape (N, P)
+        Parameter values.
+    log_weight : ndarray, shape (N,)
+        Normalised log posterior weights (``logwt - logz[-1]``; ``exp`` sums to 1).
+    """
+
+    theta: np.ndarray
+    log_weight: np.ndarray
 
 
 @dataclass(frozen=True)
@@ -61,6 +84,13 @@ class Evidence:
     wall_time_s : float
     information : float
         KL divergence prior → posterior (nats), dynesty's ``information[-1]``.
+    n_evaluated : int
+        Points actually passed to the likelihood: ``n_calls`` plus the batched candidates
+        discarded after a proposal's accepted one (equal to ``n_calls`` when not batched).
+    batched : bool
+        Whether the proposals were evaluated in batches (:mod:`diskfield.nsbatch`).
+    draws : NestedDraws or None
+        The run's weighted points (kept in memory, not written to ``evidence.json``).
     """
 
     ln_evidence: float
@@ -71,9 +101,14 @@ class Evidence:
     seed: int
     wall_time_s: float
     information: float = float("nan")
+    n_evaluated: int = 0
+    batched: bool = False
+    draws: NestedDraws | None = field(default=None, repr=False, compare=False)
 
     def as_dict(self) -> dict:
-        return asdict(self)
+        d = asdict(self)
+        d.pop("draws")
+        return d
 
 
 class _LogLike:
@@ -97,7 +132,8 @@ class _PriorTransform:
 
 def nested_evidence(model, *, seed: int, nlive: int = DEFAULT_NLIVE,
                     dlogz: float = DEFAULT_DLOGZ, checkpoint_file=None,
-                    resume: bool = False, progress: bool = False) -> Evidence:
+                    resume: bool = False, progress: bool = False,
+                    batch: bool = True) -> Evidence:
     """ln Z of ``model`` by static nested sampling (dynesty).
 
     Parameters
@@ -117,30 +153,62 @@ def nested_evidence(model, *, seed: int, nlive: int = DEFAULT_NLIVE,
         Continue from ``checkpoint_file`` when it exists.
     progress : bool
         Print dynesty's progress line.
+    batch : bool
+        Evaluate the uniform sampler's proposals in vectorised batches
+        (:class:`diskfield.nsbatch.BatchedPool`; up to 9 parameters, where dynesty samples
+        uniformly within its ellipsoids). False: dynesty's one-point-at-a-time path. The
+        two give different (equally valid) runs for the same seed; each is reproducible.
     """
     import dynesty
 
     t0 = time.perf_counter()
     ndim = len(model.parameter_names)
     ckpt = str(checkpoint_file) if checkpoint_file is not None else None
+    batched = batch and nsbatch.AVAILABLE and ndim <= _UNIFORM_MAX_NDIM
     if resume and ckpt and Path(ckpt).is_file():
-        sampler = dynesty.NestedSampler.restore(ckpt)
+        pool = _restored_pool(ckpt) if batched else None
+        sampler = dynesty.NestedSampler.restore(ckpt, pool=pool)
         with warnings.catch_warnings():
             # resuming a run that had already finished is the normal case after a kill
             # during a later stage; dynesty warns about it, we simply reuse the result
             warnings.filterwarnings("ignore", message="You are resuming a finished")
             sampler.run_nested(resume=True, dlogz=dlogz, print_progress=progress,
-                               checkpoint_file=ckpt)
+                               checkpoint_file=ckpt, checkpoint_every=_CHECKPOINT_EVERY)
     else:
-        sampler = dynesty.NestedSampler(_LogLike(model), _PriorTransform(model), ndim,
-                                        nlive=nlive, rstate=np.random.default_rng(seed),
+        loglike, ptform = _LogLike(model), _PriorTransform(model)
+        pool = nsbatch.BatchedPool(model, loglike, ptform) if batched else None
+        sampler = dynesty.NestedSampler(loglike, ptform, ndim, nlive=nlive,
+                                        rstate=np.random.default_rng(seed), pool=pool,
                                         **_BOUND_SETTINGS)
-        sampler.run_nested(dlogz=dlogz, print_progress=progress, checkpoint_file=ckpt)
+        sampler.run_nested(dlogz=dlogz, print_progress=progress, checkpoint_file=ckpt,
+                           checkpoint_every=_CHECKPOINT_EVERY)
     res = sampler.results
+    n_calls = int(np.sum(res.ncall))
+    logwt = np.asarray(res.logwt, float) - float(res.logz[-1])
     return Evidence(ln_evidence=float(res.logz[-1]), ln_evidence_err=float(res.logzerr[-1]),
-                    n_live=int(nlive), dlogz=float(dlogz), n_calls=int(np.sum(res.ncall)),
+                    n_live=int(nlive), dlogz=float(dlogz), n_calls=n_calls,
                     seed=int(seed), wall_time_s=time.perf_counter() - t0,
-                    information=float(res.information[-1]))
+                    information=float(res.information[-1]),
+                    n_evaluated=_n_evaluated(pool, n_calls), batched=bool(pool),
+                    draws=NestedDraws(np.asarray(res.samples, float), logwt))
+
+
+def _restored_pool(ckpt):
+    """A batched pool for the likelihood objects pickled inside a dynesty checkpoint."""
+    import pickle
+
+    with open(ckpt, "rb") as fh:
+        saved = pickle.load(fh)["sampler"]
+    loglike = getattr(getattr(saved.loglikelihood, "loglikelihood", None), "func", None)
+    ptform = getattr(saved.prior_transform, "func", None)
+    if not isinstance(loglike, _LogLike) or not isinstance(ptform, _PriorTransform):
+        return None
+    return nsbatch.BatchedPool(loglike.model, loglike, ptform)
+
+
+def _n_evaluated(pool, n_calls):
+    # after a resume the pool saw only the resumed part: report the larger figure
+    return max(n_calls, pool.n_evaluated) if pool is not None else n_calls
 
 
 @dataclass(frozen=True)
