@@ -7,7 +7,8 @@ calls. dynesty's supported parallel interface is a *pool*: an object with ``map`
 ``pool.map(sampler_function, arguments)``, each argument carrying its own random seed.
 :class:`BatchedPool` is such a pool that runs in the calling process: for the uniform
 sampler (the one dynesty picks below 10 dimensions) it advances all queued proposals in
-lockstep and evaluates their candidates in one vectorised likelihood call per round.
+lockstep and evaluates their candidates in one vectorised likelihood call per round; the
+same for the unit-cube sampler dynesty uses before its first bound update.
 
 Each queued proposal draws its candidates from its own generator in the same order as
 dynesty's own ``UniformBoundSampler.sample`` and returns the first candidate above the
@@ -17,7 +18,8 @@ depend on the other points of its batch (tests/test_evidence.py checks this). Ca
 drawn after a proposal's accepted one in the same round are evaluated and discarded
 (counted in ``n_evaluated``, not in dynesty's call count).
 
-This relies on dynesty internals (``internal_samplers.UniformBoundSampler.sample``,
+This relies on dynesty internals (``internal_samplers.UniformBoundSampler.sample`` and
+``UnitCubeSampler.sample``,
 ``SamplerArgument``/``SamplerReturn``, ``utils.LoglOutput``), checked for dynesty 3.x at
 import: when they are missing :data:`AVAILABLE` is False and :mod:`diskfield.evidence`
 runs dynesty's plain one-point path. Any other function handed to ``map`` (other
@@ -43,7 +45,7 @@ DEFAULT_QUEUE = 16
 
 try:  # dynesty internals the batching needs (dynesty 3.x); see the module docstring
     import dynesty
-    from dynesty.internal_samplers import SamplerReturn, UniformBoundSampler
+    from dynesty.internal_samplers import SamplerReturn, UniformBoundSampler, UnitCubeSampler
     from dynesty.utils import LoglOutput, SamplerHistoryItem, get_random_generator, unitcheck
 
     AVAILABLE = (int(dynesty.__version__.split(".")[0]) == 3
@@ -94,14 +96,16 @@ class BatchedPool:
         self.batch, self.size = int(batch), int(queue_size)
         self.n_evaluated = 0
         self.n_batches = 0
+        self._tried, self._accepted = 0, 0
 
     # ------------------------------------------------------------ dynesty's map
     def map(self, func, iterable):
         items = list(iterable)
         if not items:
             return []
-        if func is UniformBoundSampler.sample and self._ours(items[0].loglikelihood):
-            return self._uniform(items)
+        draw = _DRAWS.get(func)
+        if draw is not None and self._ours(items[0].loglikelihood):
+            return self._uniform(items, draw, cube=func is UnitCubeSampler.sample)
         if _unwrap(func) is self.ptform:
             return list(self.model.prior_transform(np.asarray(items, float)))
         if self._ours(func):
@@ -117,17 +121,18 @@ class BatchedPool:
         return _finite(self.model.log_likelihood(v))
 
     # ------------------------------------------------------------ uniform sampler
-    def _uniform(self, args):
-        """``UniformBoundSampler.sample`` for every argument, candidates batched."""
+    def _uniform(self, args, draw, cube):
+        """dynesty's uniform samplers (within the bound, or in the whole unit cube before
+        the first bound update) for every argument, candidates batched."""
         rngs = [get_random_generator(a.rseed) for a in args]
         done = [None] * len(args)
         calls = [0] * len(args)
         history = [[] for _ in args]
         active = list(range(len(args)))
         while active:
-            per = max(1, math.ceil(self.batch / len(active)))
+            per = self._per_proposal(len(active))
             owners = [i for i in active for _ in range(per)]
-            u = np.array([_draw(args[i], rngs[i]) for i in owners])
+            u = np.array([draw(args[i], rngs[i]) for i in owners])
             v = self.model.prior_transform(u)
             logl = self._loglike(v)
             for k, i in enumerate(owners):
@@ -135,13 +140,26 @@ class BatchedPool:
                     continue  # drawn after this proposal's accepted candidate: discarded
                 out = LoglOutput(float(logl[k]), False)
                 calls[i] += 1
+                self._tried += 1
                 history[i].append(SamplerHistoryItem(u=u[k], v=v[k], logl=out))
                 if out > args[i].loglstar:
+                    self._accepted += 1
                     done[i] = SamplerReturn(u=u[k], v=v[k], logl=out, ncalls=calls[i],
                                             evaluation_history=history[i], tuning_info=None,
-                                            proposal_stats={"n_proposals": 0})
+                                            proposal_stats={"n_proposals":
+                                                            calls[i] if cube else 0})
             active = [i for i in active if done[i] is None]
         return done
+
+
+    def _per_proposal(self, n_active):
+        """Candidates per active proposal this round: enough to fill a batch, but not much
+        more than twice the number the acceptance rate so far says a proposal needs (extra
+        candidates only cost time; they never change which candidate is accepted)."""
+        fill = math.ceil(self.batch / n_active)
+        rate = self._accepted / self._tried if self._tried else 1.0
+        need = math.ceil(2.0 / max(rate, 1.0 / self.batch))
+        return max(1, min(fill, need))
 
 
 def _unwrap(func):
@@ -149,7 +167,12 @@ def _unwrap(func):
     return getattr(func, "func", func)
 
 
-def _draw(arg, rstate):
+def _draw_cube(arg, rstate):
+    """One candidate, as ``UnitCubeSampler.sample`` draws it."""
+    return rstate.uniform(size=arg.kwargs.get("ndim"))
+
+
+def _draw_bound(arg, rstate):
     """One candidate in the unit cube, as ``UniformBoundSampler.sample`` draws it."""
     kw = arg.kwargs
     bound, ndim, n_cluster = kw["bound"], kw["ndim"], kw.get("n_cluster")
@@ -167,3 +190,7 @@ def _draw(arg, rstate):
     if n_cluster != ndim:
         u = np.concatenate((u, rstate.uniform(size=(ndim - n_cluster))))
     return u
+
+
+_DRAWS = ({UniformBoundSampler.sample: _draw_bound, UnitCubeSampler.sample: _draw_cube}
+          if AVAILABLE else {})
