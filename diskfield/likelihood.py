@@ -21,14 +21,14 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import special
 
 from . import quadrature as quad
+from . import steady
 from ._lkcommon import _detection_stats, _expand, _finite_support
 from .aged import _age_priors, _age_rule, _integrand_aged
 from .errors import CompilationError, OptionError, PriorFileError, Problem
 from .priorspec import Uniform
-from .recording import LN_SQRT_2PI, emg_logpdf, emg_logsf, record_terms
+from .recording import record_terms
 
 __all__ = ["SPIN_MODES", "Model", "build_model"]
 
@@ -114,6 +114,7 @@ class Model:
         self.n_bodies = len(comp.bodies)
         self._terms = record_terms(comp.records, priorset.calibration, priorset.remanence)
         self._bodies = _pad_bodies(comp, self._terms, _distance_priors(comp, priorset), spin)
+        self._group_priors, self._prior_group = _prior_groups(self._bodies.priors)
         self._ages = _age_priors(comp, priorset) if envelope.time_dependent else None
         self._obliquity = getattr(priorset, "spin_obliquity", None)
         self.config = {"profile": profile.name, "envelope": envelope.name, "spin": spin,
@@ -238,23 +239,99 @@ class Model:
 
     # ------------------------------------------------------------------ internals
     def _body_loglike(self, p):
-        _, log_terms = self._distance_terms(p)
-        return quad.log_sum_exp(log_terms, axis=-1)
+        if self.envelope.time_dependent:
+            return quad.log_sum_exp(self._distance_terms(p)[1], axis=-1)
+        _, terms, wi, gi, _ = self._steady_terms(p)
+        row = wi * self.n_bodies + gi
+        start = np.flatnonzero(np.r_[True, row[1:] != row[:-1]])
+        # every (walker, body) has nodes: the base panels across its support have width > 0
+        top = np.maximum.reduceat(terms, start)
+        top = np.where(np.isfinite(top), top, 0.0)
+        with np.errstate(divide="ignore"):
+            total = np.log(np.add.reduceat(np.exp(terms - np.repeat(top, np.diff(
+                np.r_[start, len(row)]))), start)) + top
+        return total.reshape(len(p["intrinsic_scatter"]), self.n_bodies)
 
-    def _distance_terms(self, p):
-        """Distance nodes (W, G, K) and ln(weight x prior x integrand) at them."""
+    def _setup(self, p):
+        """Variances (W, G, n), detection statistics, age rule and distance breakpoints."""
         b = self._bodies
         var = np.maximum(b.var_fixed + p["intrinsic_scatter"][:, None, None] ** 2, _MIN_VAR)
         stats = _detection_stats(b.z, var, b.det)
         ages = _age_rule(self._ages, self.envelope, p, self.settings) if self._ages else None
         level, scale = self._level(b, var, stats, ages)
-        r, logw = self._distance_rule(p, level, scale)
+        return var, stats, ages, self._distance_rule(p, level, scale)
+
+    def _distance_terms(self, p):
+        """Distance nodes (W, G, K) and ln(weight x prior x integrand) at them (dense: the
+        zero-width panels' nodes are kept, with ln term -inf)."""
+        b = self._bodies
+        if not self.envelope.time_dependent:
+            r, logw = quad.panel_rule(self._setup(p)[3], self.settings.panel_nodes)
+            out = np.full(r.shape, -np.inf)
+            out[np.isfinite(logw)] = self._steady_terms(p)[1]
+            return r, out
+        var, stats, ages, breaks = self._setup(p)
+        r, logw = quad.panel_rule(breaks, self.settings.panel_nodes)
         phi = self.profile.log_field(r, _expand(p, 2))
         log_f = self._log_integrand(phi, b, var, stats, ages, p)
-        logp = np.empty_like(r)
-        for g, prior in enumerate(b.priors):
-            logp[:, g] = prior.log_prob(r[:, g])
-        return r, logw + logp + log_f
+        gi = np.broadcast_to(np.arange(self.n_bodies)[:, None], r.shape)
+        return r, logw + self._log_distance_prior(r, gi) + log_f
+
+    def _steady_terms(self, p):
+        """Steady envelope: the distance rule's nodes of positive weight only, flat.
+
+        Zero-width panels (unused crossing slots, breaks clipped to a support, ring breaks
+        outside a body's support: over half the panels of a ring) carry no weight and are not
+        evaluated. Nodes are ordered by walker, body, panel, node (the dense rule's order).
+
+        Returns
+        -------
+        r, terms : ndarray, shape (N,)
+            Nodes [AU] and ln(weight x prior x integrand).
+        wi, gi : ndarray of int, shape (N,)
+            Walker and body of each node.
+        keep : ndarray of bool, shape (W, G, B - 1)
+            Panels of positive width.
+        """
+        b, n = self._bodies, self.settings.panel_nodes
+        var, stats, _, breaks = self._setup(p)
+        h = np.diff(breaks, axis=-1)
+        keep = h > 0
+        wi, gi, _ = np.nonzero(keep)
+        x, w = quad.gauss_legendre_unit(n)
+        hk = h[keep][:, None]
+        r = (breaks[..., :-1][keep][:, None] + hk * x).ravel()
+        logw = (np.log(hk) + np.log(w)).ravel()
+        wi, gi = np.repeat(wi, n), np.repeat(gi, n)
+        phi = self._log_field_at(p, r, wi)
+        terms = (logw + self._log_distance_prior(r, gi)
+                 + self._log_integrand(phi, b, var, stats, None, p, at=(wi, gi)))
+        return r, terms, wi, gi, keep
+
+    def _log_field_at(self, p, r, wi):
+        """ln R at flat distances ``r`` (N,) of walkers ``wi`` (N,).
+
+        The profile is called on a (W, M) array (the plug-in contract: leading walker axis),
+        each walker's nodes packed to the front; unused slots hold a support end.
+        """
+        w = len(p["intrinsic_scatter"])
+        counts = np.bincount(wi, minlength=w)
+        pos = np.arange(len(wi)) - (np.cumsum(counts) - counts)[wi]
+        grid = np.full((w, max(int(counts.max(initial=0)), 1)), self._bodies.lo.min())
+        grid[wi, pos] = r
+        return self.profile.log_field(grid, _expand(p, 1))[wi, pos]
+
+    def _log_distance_prior(self, r, gi):
+        """ln prior density of each body's distance at ``r`` (any shape; ``gi`` its bodies).
+
+        Bodies sharing one prior (a reservoir's) are evaluated in one call.
+        """
+        out = np.empty_like(r)
+        group = self._prior_group[gi]
+        for k, prior in enumerate(self._group_priors):
+            sel = group == k
+            out[sel] = prior.log_prob(r[sel])
+        return out
 
     def _level(self, b, var, stats, ages):
         """ln-field level and its scale (W, G) around which each body's integrand is sharp."""
@@ -275,7 +352,7 @@ class Model:
         return level, np.where(np.isfinite(scale), scale, 1.0)
 
     def _distance_rule(self, p, level, scale):
-        """Composite Gauss–Legendre nodes in r (W, G, K) and ln weights."""
+        """Sorted breakpoints (W, G, B) [AU] of the composite Gauss–Legendre distance rule."""
         s, b = self.settings, self._bodies
         w = len(level)
         lo = np.broadcast_to(b.lo, level.shape)
@@ -298,26 +375,29 @@ class Model:
                  _edge_breaks(self.profile, p, level, scale, b, s.grade_factors)]
         if features is not None:
             parts.append(np.clip(features[:, None, :], lo[..., None], hi[..., None]))
-        breaks = np.sort(np.concatenate(parts, axis=-1), axis=-1)
-        return quad.panel_rule(breaks, s.panel_nodes)
+        return np.sort(np.concatenate(parts, axis=-1), axis=-1)
 
-    def _log_integrand(self, phi, b, var, stats, ages, p):
-        """ln p(records of body | ln R = phi) at the distance nodes, shape (W, G, K)."""
+    def _log_integrand(self, phi, b, var, stats, ages, p, at=None):
+        """ln p(records of body | ln R = phi): the one place where the integrand is chosen.
+
+        Time-dependent envelopes: ``phi`` has shape (W, G, K) (dense nodes). Steady envelope:
+        ``phi`` has shape (N,) and ``at = (wi, gi)`` gives each node's walker and body.
+        """
         if ages is not None:
             return _integrand_aged(phi, b, var, ages, self.spin, self.settings)
+        wi, gi = at
         if self.spin == "none":
-            return _integrand_no_spin(phi, b, var, stats)
+            return steady.no_spin(phi, wi, gi, b, var, stats)
         if self.spin == "record":
-            return _integrand_record_spin(phi, b, var)
+            return steady.record_spin(phi, wi, gi, b, var)
         if not np.any(b.needs_x):
-            return _integrand_body_spin(phi, stats)
+            return steady.body_spin(phi, wi, gi, stats)
         out = np.empty_like(phi)
-        gc = np.flatnonzero(~b.needs_x)
-        if len(gc):
-            out[:, gc] = _integrand_body_spin(phi[:, gc], tuple(a[:, gc] for a in stats))
-        gx = np.flatnonzero(b.needs_x)
-        sub = _subset(b, var, stats, gx)
-        out[:, gx] = _integrand_body_spin_numeric(phi[:, gx], *sub, self.settings.spin_panel_nodes)
+        nx = b.needs_x[gi]
+        out[~nx] = steady.body_spin(phi[~nx], wi[~nx], gi[~nx], stats)
+        out[nx] = steady.body_spin_with_limits(phi[nx], wi[nx], gi[nx],
+                                               np.flatnonzero(b.needs_x), b, var, stats,
+                                               self.settings.spin_panel_nodes)
         return out
 
 
@@ -354,6 +434,18 @@ def _distance_priors(comp, priorset):
                                  f" got {prior.describe()}")
         out.append(prior)
     return tuple(out)
+
+
+def _prior_groups(priors):
+    """Distinct distance priors and each body's index into them."""
+    distinct, group = [], []
+    for prior in priors:
+        k = next((i for i, d in enumerate(distinct) if d is prior or d == prior), None)
+        if k is None:
+            distinct.append(prior)
+            k = len(distinct) - 1
+        group.append(k)
+    return tuple(distinct), np.array(group, int)
 
 
 def _pad_bodies(comp, terms, priors, spin):
@@ -480,190 +572,6 @@ def _approach_point(profile, p, scout, phi_s, level, scale, b):
     centre = np.clip(vertex, np.maximum(rm, b.lo), np.minimum(rp, b.hi))
     width = _tail_width(profile, p, centre, level, scale)
     return centre, width
-
-
-# ---------------------------------------------------------------------- integrands
-
-
-def _integrand_body_spin(phi, stats):
-    """Closed form for bodies of detections only (or a single limit): ln K + EMG density."""
-    zbar, v, ln_k = (a[..., None] for a in stats)
-    return ln_k + emg_logpdf(phi - zbar, np.where(np.isfinite(v), v, 1.0))
-
-
-def _subset(b, var, stats, gx):
-    """Limits (compacted to (Gx, L)) and detection stats of the bodies ``gx``."""
-    lim = b.lim[gx]
-    n_l = max(int(lim.sum(axis=1).max()), 1)
-    order = np.argsort(~lim, axis=1, kind="stable")[:, :n_l]
-    take = lambda a: np.take_along_axis(a, order, axis=-1)  # noqa: E731
-    zl = take(b.z[gx])
-    vl = np.take_along_axis(var[:, gx], order[None], axis=-1)
-    zbar, v, ln_k = (a[:, gx] for a in stats)
-    return zl, vl, take(lim), zbar, v, ln_k
-
-
-#: Breakpoints of the Y rule, in units of the feature's width, either side of the
-#: detections' peak and of each limit (GL panels between them; +-20 widths is the range kept).
-_Y_GRADES = np.array([-20.0, -9.0, -3.0, -1.0, 0.0, 1.0, 3.0, 9.0, 20.0])
-
-
-def _integrand_body_spin_numeric(phi, z, var, lim, zbar, v, ln_k, n_nodes):
-    """Body-shared spin with upper limits, by a cumulative integral in the recorded log field.
-
-    With Y = ln B - X the recorded log field, the spin integral is
-    F(phi) = e^-phi C(phi), C(phi) = int_-inf^phi e^Y h(Y) dY, where h(Y) (detections' Gaussian
-    product times the limits' normal CDFs) does not depend on the distance. C is tabulated
-    once per (walker, body) with Gauss–Legendre panels graded around the detections' peak and
-    every limit, and read at each distance node by integrating the panel's interpolating
-    polynomial up to phi. Below the tabulated range the limits are all but certain to pass:
-    C(phi) ~ e^phi prod Phi (limits only) or the closed-form EMG times prod Phi.
-
-    Parameters
-    ----------
-    phi : ndarray, shape (W, G, K)
-        ln R at the distance nodes.
-    z, var, lim : ndarray
-        Limits (G, L), their variances (W, G, L) and mask (G, L).
-    zbar, v, ln_k : ndarray, shape (W, G)
-        Detections' statistics (V = inf: no detections).
-    n_nodes : int
-        Gauss–Legendre nodes per Y panel.
-    """
-    breaks, y_a, has_det, sd = _y_breaks(z, var, lim, zbar, v)
-    y, logw = quad.panel_rule(breaks, n_nodes)
-    lf = y + _log_h(y, z, var, lim, zbar, v, ln_k, has_det)
-    tail0 = np.where(has_det, -np.inf, y_a + _log_h(y_a[..., None], z, var, lim, zbar, v, ln_k,
-                                                     has_det)[..., 0])
-    out, below = _read_cumulative(phi, breaks, lf, logw, tail0, n_nodes)
-    if np.any(below):
-        out[below] = _log_h_tail_at(below, phi, z, var, lim, zbar, v, ln_k, has_det)
-    return out
-
-
-def _read_cumulative(phi, breaks, lf, logw, tail0, n_nodes):
-    """ln[e^-phi C(phi)] from a tabulated ln[e^Y h(Y)] on composite Gauss–Legendre panels.
-
-    Parameters
-    ----------
-    phi : ndarray, shape (W, G, K)
-        Points where C is read (natural-log field units).
-    breaks : ndarray, shape (W, G, B)
-        Sorted panel breakpoints in Y.
-    lf, logw : ndarray, shape (W, G, (B - 1) n_nodes)
-        ln[e^Y h(Y)] at the panel nodes and the rule's ln weights.
-    tail0 : ndarray, shape (W, G)
-        ln C at the first breakpoint (the integral below the table).
-    n_nodes : int
-        Gauss–Legendre nodes per panel.
-
-    Returns
-    -------
-    out : ndarray, shape (W, G, K)
-        ln[e^-phi C(phi)]; entries below the table are left for the caller to fill.
-    below : ndarray of bool, shape (W, G, K)
-        Points below the first breakpoint.
-    """
-    nb = breaks.shape[-1]
-    lf_p = lf.reshape(lf.shape[:2] + (nb - 1, n_nodes))
-    panel = quad.log_sum_exp(lf_p + logw.reshape(lf_p.shape), axis=-1)
-    log_c = np.logaddexp.accumulate(np.concatenate([tail0[..., None], panel], axis=-1), axis=-1)
-    idx = np.count_nonzero(breaks[:, :, None, :] <= phi[..., None], axis=-1) - 1
-    p = np.clip(idx, 0, nb - 2)
-    a, b_end = _gather_last(breaks, p), _gather_last(breaks, p + 1)
-    h = b_end - a
-    t = np.clip((phi - a) / np.where(h > 0, h, 1.0), 0.0, 1.0)
-    lfk = _gather_last(lf, p[..., None] * n_nodes + np.arange(n_nodes))
-    top = np.max(lfk, axis=-1)
-    part = np.sum(np.exp(lfk - top[..., None]) * quad.partial_panel_weights(t, n_nodes), axis=-1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        part = np.log(np.maximum(part * h, 0.0)) + top
-    out = np.logaddexp(_gather_last(log_c, p), part) - phi
-    out = np.where(idx >= nb - 1, log_c[..., -1:] - phi, out)
-    return out, idx < 0
-
-
-def _gather_last(a, idx):
-    """``a[w, g, idx[w, g, ...]]`` for ``a`` of shape (W, G, N) and integer ``idx`` (W, G, ...).
-
-    Flat indexing: cheaper than ``take_along_axis`` on the small arrays of the hot path.
-    """
-    w, g, n = a.shape
-    base = (np.arange(w * g) * n).reshape((w, g) + (1,) * (idx.ndim - 2))
-    return a.reshape(-1)[base + idx]
-
-
-def _log_h_tail_at(mask, phi, z, var, lim, zbar, v, ln_k, has_det):
-    """ln F below the tabulated range, at the distance nodes selected by ``mask`` (W, G, K).
-
-    Closed-form EMG (detections) plus the limits' ln Phi, evaluated only where needed; (M,).
-    """
-    wi, gi, _ = np.nonzero(mask)
-    ph = phi[mask]
-    hd = has_det[wi, gi]
-    vv = np.where(hd, v[wi, gi], 1.0)
-    det = np.where(hd, ln_k[wi, gi] + emg_logpdf(ph - zbar[wi, gi], vv), 0.0)
-    arg = (z[gi] - ph[:, None]) / np.sqrt(var[wi, gi])
-    return det + np.where(lim[gi], special.log_ndtr(arg), 0.0).sum(axis=-1)
-
-
-def _y_breaks(z, var, lim, zbar, v):
-    """Sorted Y breakpoints (W, G, B), the range start Y_a (W, G), detection mask, limit sds."""
-    has_det = np.isfinite(v)
-    sv = np.sqrt(np.where(has_det, v, 1.0))
-    peak = zbar + np.where(has_det, v, 0.0)       # e^Y N(Y; zbar, V) peaks at zbar + V
-    sd = np.sqrt(var)
-    zl = np.broadcast_to(z, sd.shape)
-    lim_pts = zl[..., None] + sd[..., None] * _Y_GRADES
-    lo_lim = np.min(np.where(lim, zl - 20.0 * sd, np.inf), axis=-1)
-    hi_lim = np.max(np.where(lim, zl + 20.0 * sd, -np.inf), axis=-1)
-    y_a = np.where(has_det, peak - 20.0 * sv, lo_lim)
-    y_b = np.where(has_det, peak + 20.0 * sv, hi_lim)
-    det_pts = np.where(has_det[..., None], peak[..., None] + sv[..., None] * _Y_GRADES,
-                       y_a[..., None])
-    lim_pts = np.where(lim[..., None], lim_pts, y_a[..., None, None])
-    pts = np.concatenate([det_pts, lim_pts.reshape(sd.shape[:2] + (-1,)),
-                          y_a[..., None], y_b[..., None]], axis=-1)
-    pts = np.clip(pts, y_a[..., None], y_b[..., None])
-    return np.sort(pts, axis=-1), y_a, has_det, sd
-
-
-def _log_h(y, z, var, lim, zbar, v, ln_k, has_det):
-    """ln h(Y): detections' Gaussian product (K N(zbar; Y, V)) plus the limits' ln Phi, (W, G, Q)."""
-    vv = np.where(has_det, v, 1.0)[..., None]
-    det = np.where(has_det[..., None], ln_k[..., None] - 0.5 * (zbar[..., None] - y) ** 2 / vv
-                   - 0.5 * np.log(vv) - LN_SQRT_2PI, 0.0)
-    arg = (z[None, :, None, :] - y[..., None]) / np.sqrt(var[:, :, None, :])
-    return det + np.where(lim[None, :, None, :], special.log_ndtr(arg), 0.0).sum(axis=-1)
-
-
-def _log_limits(phi, x, z, var, lim):
-    """sum_j ln Phi((z_j - phi + X) / S_j) over each body's limits; x shape (W, G, K, Q)."""
-    arg = (z[None, :, None, None, :] - phi[..., None, None] + x[..., None]) / np.sqrt(
-        var[:, :, None, None, :])
-    return np.where(lim[None, :, None, None, :], special.log_ndtr(arg), 0.0).sum(axis=-1)
-
-
-def _integrand_no_spin(phi, b, var, stats):
-    """Non-rotating bodies: Gaussian product of detections times normal CDFs of limits."""
-    zbar, v, ln_k = (a[..., None] for a in stats)
-    has = np.isfinite(v)
-    out = np.where(has, ln_k - 0.5 * (phi - zbar) ** 2 / np.where(has, v, 1.0)
-                   - 0.5 * np.log(np.where(has, v, 1.0)) - LN_SQRT_2PI, 0.0)
-    if np.any(b.lim):
-        arg = (b.z[None, :, None, :] - phi[..., None]) / np.sqrt(var[:, :, None, :])
-        out = out + np.where(b.lim[None, :, None, :], special.log_ndtr(arg), 0.0).sum(axis=-1)
-    return out
-
-
-def _integrand_record_spin(phi, b, var):
-    """Independent spin per record: one EMG density (detection) or survival (limit) each."""
-    d = phi[..., None] - b.z[None, :, None, :]
-    vv = var[:, :, None, :]
-    dens = np.where(b.det[None, :, None, :], emg_logpdf(d, vv), 0.0)
-    if np.any(b.lim):
-        dens = dens + np.where(b.lim[None, :, None, :], emg_logsf(d, vv), 0.0)
-    return dens.sum(axis=-1)
 
 
 # ---------------------------------------------------------------------- factory

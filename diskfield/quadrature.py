@@ -25,6 +25,7 @@ __all__ = [
     "refine_crossings",
     "graded_breaks",
     "partial_panel_weights",
+    "antiderivative_coefficients",
 ]
 
 
@@ -187,13 +188,19 @@ def graded_breaks(centre, scale, lo, hi, factors=(1.0, 3.0, 9.0)):
 
 
 @lru_cache(maxsize=16)
-def _antiderivative_coefficients(n: int) -> np.ndarray:
+def antiderivative_coefficients(n: int) -> np.ndarray:
     """C[k, j]: coefficient of t^(k+1) in A_j(t) = int_0^t l_j(s) ds, l_j the Lagrange basis
-    polynomial of the n Gauss–Legendre nodes on [0, 1]."""
+    polynomial of the n Gauss–Legendre nodes on [0, 1] (read-only, shape (n, n)).
+
+    ``c = C @ f`` gives the monomial coefficients of the antiderivative of the polynomial
+    interpolating f at the nodes: int_0^t p(s) ds = sum_k c_k t^(k+1).
+    """
     x, _ = gauss_legendre_unit(n)
     vander = np.vander(x, n, increasing=True)          # V[i, k] = x_i^k
     coef = np.linalg.solve(vander, np.eye(n))          # l_j(s) = sum_k coef[k, j] s^k
-    return coef / np.arange(1, n + 1)[:, None]
+    out = coef / np.arange(1, n + 1)[:, None]
+    out.setflags(write=False)
+    return out
 
 
 def partial_panel_weights(t: np.ndarray, n: int) -> np.ndarray:
@@ -218,4 +225,4 @@ def partial_panel_weights(t: np.ndarray, n: int) -> np.ndarray:
     # repeated products instead of a float power: pow is ~20x slower than a multiply
     powers = np.repeat(t, n, axis=-1)
     np.cumprod(powers, axis=-1, out=powers)
-    return powers @ _antiderivative_coefficients(n)
+    return powers @ antiderivative_coefficients(n)

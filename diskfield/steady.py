@@ -1,0 +1,243 @@
+"""Steady-envelope integrands ln p(records of a body | ln R = phi), at compacted distance nodes.
+
+The distance rule of :mod:`diskfield.likelihood` is a dense (W, G, K) array in which most
+panels have zero width (unused crossing slots, graded breaks clipped to the support, ring
+breaks outside a body's support). Only the nodes with positive weight are evaluated: they come
+here as flat arrays ``phi`` (N,) with their walker and body indices ``wi``, ``gi`` (N,), and
+every per-(walker, body) quantity is gathered once per node.
+
+Bodies whose records are all detections (shared spin) cost one exponentially modified Gaussian
+per node. A body with upper limits and the shared spin needs the spin integral numerically:
+with Y = ln B - X the recorded log field, F(phi) = e^-phi C(phi), C(phi) = int_-inf^phi e^Y h(Y)
+dY, and h(Y) (detections' Gaussian product times the limits' normal CDFs) does not depend on the
+distance. C is tabulated once per (walker, body) on Gauss–Legendre panels graded around the
+detections' peak and every limit; each panel's interpolating polynomial is integrated in
+closed form, stored as monomial coefficients, and read at a node by Horner's rule.
+"""
+from __future__ import annotations
+
+import numpy as np
+from scipy import special
+
+from . import quadrature as quad
+from .recording import LN_SQRT_2PI, emg_logpdf, emg_logsf
+
+__all__ = ["body_spin", "no_spin", "record_spin", "body_spin_with_limits"]
+
+#: Breakpoints of the Y rule, in units of the feature's width, either side of the
+#: detections' peak and of each limit (GL panels between them; +-20 widths is the range kept).
+_Y_GRADES = np.array([-20.0, -9.0, -3.0, -1.0, 0.0, 1.0, 3.0, 9.0, 20.0])
+
+
+def body_spin(phi, wi, gi, stats):
+    """Closed form for bodies of detections only (or a single limit): ln K + EMG density.
+
+    Parameters
+    ----------
+    phi : ndarray, shape (N,)
+        ln(R / uT) at the nodes.
+    wi, gi : ndarray of int, shape (N,)
+        Walker and body of each node.
+    stats : tuple of ndarray, each (W, G)
+        Detections' precision-weighted mean, variance V (inf: none) and ln K.
+    """
+    zbar, v, ln_k = (a[wi, gi] for a in stats)
+    return ln_k + emg_logpdf(phi - zbar, np.where(np.isfinite(v), v, 1.0))
+
+
+def _limits_at(b, var, wi, gi):
+    """Each node's body's limit values (N, L), variances (N, L) and mask, limits compacted."""
+    n_l = max(int(b.lim.sum(axis=1).max()), 1)
+    order = np.argsort(~b.lim, axis=1, kind="stable")[:, :n_l]
+    zl = np.take_along_axis(b.z, order, axis=1)[gi]
+    vl = np.take_along_axis(var[wi, gi], order[gi], axis=1)
+    return zl, vl, np.take_along_axis(b.lim, order, axis=1)[gi]
+
+
+def no_spin(phi, wi, gi, b, var, stats):
+    """Non-rotating bodies: Gaussian product of detections times normal CDFs of limits, (N,)."""
+    zbar, v, ln_k = (a[wi, gi] for a in stats)
+    has = np.isfinite(v)
+    vv = np.where(has, v, 1.0)
+    out = np.where(has, ln_k - 0.5 * (phi - zbar) ** 2 / vv - 0.5 * np.log(vv) - LN_SQRT_2PI,
+                   0.0)
+    if np.any(b.lim):
+        zl, vl, lim = _limits_at(b, var, wi, gi)
+        arg = (zl - phi[:, None]) / np.sqrt(vl)
+        out = out + np.where(lim, special.log_ndtr(arg), 0.0).sum(axis=-1)
+    return out
+
+
+def record_spin(phi, wi, gi, b, var):
+    """Independent spin per record: one EMG density (detection) or survival (limit) each, (N,)."""
+    d = phi[:, None] - b.z[gi]
+    vv = var[wi, gi]
+    dens = np.where(b.det[gi], emg_logpdf(d, vv), 0.0)
+    if np.any(b.lim):
+        dens = dens + np.where(b.lim[gi], emg_logsf(d, vv), 0.0)
+    return dens.sum(axis=-1)
+
+
+# ---------------------------------------------------------------------- shared spin, limits
+def body_spin_with_limits(phi, wi, gi, gx, b, var, stats, n_nodes):
+    """Body-shared spin with upper limits, by a cumulative integral in the recorded log field.
+
+    Parameters
+    ----------
+    phi : ndarray, shape (N,)
+        ln R at nodes of the bodies ``gx`` only.
+    wi, gi : ndarray of int, shape (N,)
+        Walker and body of each node (every ``gi`` in ``gx``).
+    gx : ndarray of int
+        The bodies needing the numerical spin integral.
+    b, var, stats
+        Padded bodies, total variances (W, G, n) and detection statistics (W, G).
+    n_nodes : int
+        Gauss–Legendre nodes per Y panel.
+
+    Returns
+    -------
+    ndarray, shape (N,)
+        ln F(phi). Below the tabulated range the limits are all but certain to pass:
+        F ~ prod Phi (limits only) or the closed-form EMG times prod Phi.
+    """
+    z, vl, lim, zbar, v, ln_k = _subset(b, var, stats, gx)
+    breaks, y_a, has_det = _y_breaks(z, vl, lim, zbar, v)
+    w, g, nb = breaks.shape
+    pos = np.zeros(b.lim.shape[0], int)
+    pos[gx] = np.arange(len(gx))
+    row = wi * g + pos[gi]
+    y, logw = quad.panel_rule(breaks, n_nodes)
+    keep = np.isfinite(logw) & _needed(breaks, row, phi, has_det, zbar, v, n_nodes)
+    yw, yg, _ = np.nonzero(keep)
+    lf = np.full(y.shape, -np.inf)
+    yk = y[keep]
+    lf[keep] = yk + _log_h(yk, yw, yg, z, vl, lim, zbar, v, ln_k, has_det)
+    tail0 = np.where(has_det, -np.inf,
+                     y_a + _log_h(y_a.ravel(), *np.indices((w, g)).reshape(2, -1), z, vl, lim,
+                                  zbar, v, ln_k, has_det).reshape(w, g))
+    table = _cumulative_table(breaks.reshape(w * g, nb), lf.reshape(w * g, -1),
+                              tail0.ravel(), n_nodes)
+    out, below = _read_table(table, phi, row)
+    if np.any(below):
+        gw, gg = wi[below], pos[gi[below]]
+        out[below] = _log_h(phi[below], gw, gg, z, vl, lim, zbar, v, ln_k, has_det,
+                            tail=True)
+    return out
+
+
+#: Above the detections' peak by this many sds, e^Y N(Y; zbar, V) is below e^-40.5 of its
+#: peak value: those Y panels add nothing to C (numerical convention).
+_SKIP_ABOVE_PEAK = 9.0
+
+
+def _needed(breaks, row, phi, has_det, zbar, v, n_nodes):
+    """Y panels whose integrand can matter (W, G, Q) (node mask, panels repeated n times).
+
+    A panel is skipped when it starts above every phi read from its row (C is only read up
+    to phi), or, for a body with detections, above the peak by ``_SKIP_ABOVE_PEAK`` sds.
+    """
+    w, g, nb = breaks.shape
+    top = np.full(w * g, -np.inf)
+    np.maximum.at(top, row, phi)
+    a = breaks[..., :-1]
+    sv = np.sqrt(np.where(has_det, v, 1.0))
+    cut = np.where(has_det, np.minimum(top.reshape(w, g), zbar + v + _SKIP_ABOVE_PEAK * sv),
+                   top.reshape(w, g))
+    return np.repeat(a <= cut[..., None], n_nodes, axis=-1)
+
+
+def _subset(b, var, stats, gx):
+    """Limits (compacted to (Gx, L)) and detection stats of the bodies ``gx``."""
+    lim = b.lim[gx]
+    n_l = max(int(lim.sum(axis=1).max()), 1)
+    order = np.argsort(~lim, axis=1, kind="stable")[:, :n_l]
+    zl = np.take_along_axis(b.z[gx], order, axis=-1)
+    vl = np.take_along_axis(var[:, gx], order[None], axis=-1)
+    zbar, v, ln_k = (a[:, gx] for a in stats)
+    return zl, vl, np.take_along_axis(lim, order, axis=-1), zbar, v, ln_k
+
+
+def _y_breaks(z, var, lim, zbar, v):
+    """Sorted Y breakpoints (W, G, B), the range start Y_a (W, G) and the detection mask."""
+    has_det = np.isfinite(v)
+    sv = np.sqrt(np.where(has_det, v, 1.0))
+    peak = zbar + np.where(has_det, v, 0.0)       # e^Y N(Y; zbar, V) peaks at zbar + V
+    sd = np.sqrt(var)
+    zl = np.broadcast_to(z, sd.shape)
+    lim_pts = zl[..., None] + sd[..., None] * _Y_GRADES
+    lo_lim = np.min(np.where(lim, zl - 20.0 * sd, np.inf), axis=-1)
+    hi_lim = np.max(np.where(lim, zl + 20.0 * sd, -np.inf), axis=-1)
+    y_a = np.where(has_det, peak - 20.0 * sv, lo_lim)
+    y_b = np.where(has_det, peak + 20.0 * sv, hi_lim)
+    det_pts = np.where(has_det[..., None], peak[..., None] + sv[..., None] * _Y_GRADES,
+                       y_a[..., None])
+    lim_pts = np.where(lim[..., None], lim_pts, y_a[..., None, None])
+    pts = np.concatenate([det_pts, lim_pts.reshape(sd.shape[:2] + (-1,)),
+                          y_a[..., None], y_b[..., None]], axis=-1)
+    pts = np.clip(pts, y_a[..., None], y_b[..., None])
+    return np.sort(pts, axis=-1), y_a, has_det
+
+
+def _log_h(y, wi, gi, z, var, lim, zbar, v, ln_k, has_det, tail=False):
+    """ln h(Y) at points ``y`` (N,) of (walker, body) ``wi``, ``gi``: the detections' Gaussian
+    product (K N(zbar; Y, V)) plus the limits' ln Phi. With ``tail``, ln F below the table:
+    the closed-form EMG in place of the Gaussian (``y`` is then phi)."""
+    hd = has_det[wi, gi]
+    vv = np.where(hd, v[wi, gi], 1.0)
+    zb, lk = zbar[wi, gi], ln_k[wi, gi]
+    if tail:
+        det = lk + emg_logpdf(y - zb, vv)
+    else:
+        det = lk - 0.5 * (zb - y) ** 2 / vv - 0.5 * np.log(vv) - LN_SQRT_2PI
+    m = lim[gi]
+    terms = np.zeros(m.shape)
+    terms[m] = special.log_ndtr((z[gi] - y[:, None])[m] / np.sqrt(var[wi, gi][m]))
+    return np.where(hd, det, 0.0) + terms.sum(axis=-1)
+
+
+def _cumulative_table(breaks, lf, tail0, n_nodes):
+    """Per-panel data for reading ln C anywhere: rows (R,) of breaks (R, B) and ln[e^Y h(Y)] at
+    the panels' Gauss–Legendre nodes (R, (B - 1) n), with ln C at the first break ``tail0``.
+
+    Returns a dict: ``key`` (flat search keys), ``lo``, ``span`` (R,), ``a``, ``h``, ``top``,
+    ``log_c`` (ln C at each panel start) of shape (R, B - 1), ``coef`` (R, B - 1, n) with
+    int_a^(a + t h) e^Y h(Y) dY ~ h e^top t (c_0 + t (c_1 + ...)), ``log_end`` (R,).
+    """
+    r, nb = breaks.shape
+    lf_p = lf.reshape(r, nb - 1, n_nodes)
+    top = np.max(lf_p, axis=-1)
+    top = np.where(np.isfinite(top), top, 0.0)
+    e = np.exp(lf_p - top[..., None])
+    a, h = breaks[:, :-1], np.diff(breaks, axis=-1)
+    _, wts = quad.gauss_legendre_unit(n_nodes)
+    with np.errstate(divide="ignore"):
+        panel = np.log(h * (e @ wts)) + top
+    log_c = np.logaddexp.accumulate(np.concatenate([tail0[:, None], panel], axis=-1), axis=-1)
+    lo, span = breaks[:, 0], breaks[:, -1] - breaks[:, 0]
+    span = np.where(span > 0, span, 1.0)
+    key = ((breaks - lo[:, None]) / span[:, None] + 3.0 * np.arange(r)[:, None]).ravel()
+    return dict(key=key, lo=lo, span=span, a=a, h=h, top=top, log_c=log_c[:, :-1],
+                log_end=log_c[:, -1], coef=e @ quad.antiderivative_coefficients(n_nodes).T,
+                nb=nb)
+
+
+def _read_table(table, phi, row):
+    """ln[e^-phi C(phi)] at points ``phi`` (N,) of table rows ``row`` (N,), and a mask of the
+    points below the table (left for the caller)."""
+    nb = table["nb"]
+    # one search over all rows: row k's keys lie in [3k, 3k + 1], its queries in [3k - 1, 3k + 2]
+    q = np.clip((phi - table["lo"][row]) / table["span"][row], -1.0, 2.0) + 3.0 * row
+    idx = np.searchsorted(table["key"], q, side="right") - 1 - row * nb
+    p = np.clip(idx, 0, nb - 2)
+    a, h = table["a"][row, p], table["h"][row, p]
+    t = np.clip((phi - a) / np.where(h > 0, h, 1.0), 0.0, 1.0)
+    coef = table["coef"][row, p]
+    acc = coef[:, -1]
+    for k in range(coef.shape[1] - 2, -1, -1):
+        acc = acc * t + coef[:, k]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        part = np.log(np.maximum(acc * t * h, 0.0)) + table["top"][row, p]
+    out = np.logaddexp(table["log_c"][row, p], part) - phi
+    out = np.where(idx >= nb - 1, table["log_end"][row] - phi, out)
+    return out, idx < 0
