@@ -3,9 +3,18 @@
 Design
 ------
 * One vectorised call per step: the log-probability function receives all walkers
-  ``(W, P)`` and returns ``(W, 1 + n_bodies)`` — the log-posterior in column 0 and the
+  ``(W, P)`` and returns ``(W, 1 + n_bodies)`` — the log-density in column 0 and the
   per-body log-likelihoods as emcee "blobs" in the remaining columns — so the pointwise
   values that PSIS-LOO needs are recorded with every draw at no extra cost.
+* The sampler moves in unconstrained coordinates ``z = logit(u)``, where ``u`` is the
+  unit-cube coordinate of the model's ``prior_transform`` (the map nested sampling uses).
+  The target density in ``z`` is ln L(θ(u(z))) + ln u + ln(1 − u) summed over axes: the
+  prior is uniform in ``u`` and ``du/dz = u (1 − u)`` is the Jacobian, so the draws of
+  θ = prior_transform(expit(z)) follow the posterior exactly. Bounded priors have no
+  walls (the stretch and DE moves lost proposals at ring_amplitude's upper bound and
+  ring_radius's range), a log-uniform ``field_1au`` is sampled in ln field, and the broad
+  plateau where the ring lies outside the data becomes a smooth tail. The chain,
+  the log-posterior and every output stay in the user's parameters (θ; ln prior + ln L).
 * Walkers start in a small ball (1 % of prior mass per axis, in unit-cube coordinates)
   around the best of a multi-start maximum-likelihood search.
 * Moves: differential evolution (ter Braak 2006) with its default scale, the same with
@@ -18,10 +27,12 @@ Design
   HDF5 file that then replaces the checkpoint (``os.replace``): a kill at any moment
   loses at most the unfinished chunk, and ``resume`` continues the *same* chain
   bitwise.
-* Convergence (the primary gate): the chain is longer than ``n_tau`` × max τ (50 by
-  default; Foreman-Mackey et al. 2013, PASP 125, 306, and the emcee documentation) and
-  τ changed by less than ``tau_rtol`` since the previous chunk. Otherwise the run stops at
-  ``max_steps`` and is flagged unconverged. Burn-in: ``burn_tau`` × τ (3 τ); thinning:
+* Convergence (the primary gate): a burn-in of ``burn_tau`` × τ (3 τ) is discarded, τ is
+  re-estimated on the part after it (the start-up transient from the small ball inflated
+  τ by 5–50 % when it was included), and the run is converged when that part is longer
+  than ``n_tau`` × max τ (50 by default; Foreman-Mackey et al. 2013, PASP 125, 306, and
+  the emcee documentation) and τ changed by less than ``tau_rtol`` since the previous
+  chunk. Otherwise the run stops at ``max_steps`` and is flagged unconverged. Thinning:
   τ / 2. R-hat over walkers is reported as a secondary heuristic only — walkers of an
   ensemble sampler are not independent chains.
 """
@@ -39,12 +50,14 @@ import numpy as np
 
 from .errors import CheckpointError, ConvergenceError, OptionError
 from .manifest import atomic_path
+from scipy import special
+
 from .optimize import maximize_likelihood, unit_to_theta
 
 __all__ = ["SamplerSettings", "SamplerRun", "run_sampler", "log_probability",
            "load_checkpoint", "CHECKPOINT_VERSION"]
 
-CHECKPOINT_VERSION = "1"
+CHECKPOINT_VERSION = "2"
 
 
 @dataclass(frozen=True)
@@ -152,8 +165,9 @@ class SamplerRun:
 
     @property
     def chain_over_tau(self) -> float:
-        """Chain length divided by the largest τ."""
-        return float(self.n_steps / np.max(self.tau)) if np.all(np.isfinite(self.tau)) else 0.0
+        """Chain length after the burn-in divided by the largest τ."""
+        kept = self.n_steps - self.burn_in
+        return float(kept / np.max(self.tau)) if np.all(np.isfinite(self.tau)) else 0.0
 
     def draws(self) -> np.ndarray:
         """Kept draws as (W, D, P): walkers as "chains", after burn-in and thinning."""
@@ -192,21 +206,53 @@ class log_probability:
         return np.column_stack([total, pointwise])
 
 
+class _unit_log_probability:
+    """Vectorised log-density in ``z = logit(u)`` with per-body log-likelihoods as blobs.
+
+    Column 0 is ln L(θ) + Σ [ln u + ln(1 − u)] with θ = ``prior_transform(expit(z))``
+    (``-inf`` where θ has zero prior density or ln L is not finite); columns 1.. are the
+    per-body ln L. A plain class so that it pickles.
+    """
+
+    def __init__(self, model):
+        self.model = model
+
+    def theta(self, z):
+        """Parameters of unconstrained points ``z`` (..., P)."""
+        z = np.asarray(z, float)
+        return unit_to_theta(self.model, special.expit(z.reshape(-1, z.shape[-1]))
+                             ).reshape(z.shape)
+
+    def __call__(self, z):
+        z = np.atleast_2d(z)
+        n_bodies = self.model.n_bodies
+        log_jac = -(np.logaddexp(0.0, z) + np.logaddexp(0.0, -z)).sum(axis=1)
+        theta = self.theta(z)
+        ok = np.isfinite(log_jac) & np.isfinite(np.asarray(self.model.log_prior(theta), float))
+        pointwise = np.full((z.shape[0], n_bodies), -np.inf)
+        if np.any(ok):
+            pointwise[ok] = self.model.log_likelihood_pointwise(theta[ok])
+        total = log_jac + pointwise.sum(axis=1)
+        total = np.where(np.isfinite(total), total, -np.inf)
+        return np.column_stack([total, pointwise])
+
+
 def _moves():
     return [(emcee.moves.DEMove(), 0.7), (emcee.moves.DEMove(gamma0=1.0), 0.1),
             (emcee.moves.StretchMove(), 0.2)]
 
 
 def _initial_walkers(model, optimum, rng, n_walkers, ball, logp):
-    """Ball of walkers around the optimum in unit-cube coordinates, all with finite log-prob."""
+    """Ball of walkers around the optimum (unit-cube spread ``ball``), as z = logit(u),
+    all with a finite log-density."""
     n_params = len(model.parameter_names)
     u = np.clip(optimum.u + ball * rng.standard_normal((n_walkers, n_params)), 1e-6, 1 - 1e-6)
-    theta = unit_to_theta(model, u)
+    z = special.logit(u)
     for _ in range(100):
-        bad = ~np.isfinite(logp(theta)[:, 0])
+        bad = ~np.isfinite(logp(z)[:, 0])
         if not np.any(bad):
-            return theta
-        theta[bad] = unit_to_theta(model, rng.uniform(size=(bad.sum(), n_params)))
+            return z
+        z[bad] = special.logit(rng.uniform(1e-6, 1 - 1e-6, size=(bad.sum(), n_params)))
     raise ConvergenceError("could not find walker starting positions with a finite posterior "
                            "in 100 tries: the likelihood is -inf wherever the priors allow; "
                            "check the prior files against the data")
@@ -224,9 +270,30 @@ def _fresh_state(model, settings, seed, logp, n_walkers):
     return state, optimum.theta, optimum.log_likelihood
 
 
+def _tau(chain):
+    return emcee.autocorr.integrated_time(chain, c=5, tol=0, quiet=True)
+
+
+def _burn_in(chain, settings):
+    """Burn-in (steps) and τ of the part after it.
+
+    τ of the whole chain sets a first burn-in of ``burn_tau`` × τ; τ re-estimated after
+    it sets the final one (never more than half the chain). The returned τ is estimated
+    on the chain after the final burn-in.
+    """
+    n = chain.shape[0]
+    tau = _tau(chain)
+    for _ in range(2):
+        if not np.all(np.isfinite(tau)):
+            return n // 2, tau
+        burn = min(int(np.ceil(settings.burn_tau * np.max(tau))), n // 2)
+        tau = _tau(chain[burn:])
+    return burn, tau
+
+
 def _check_tau(chain, tau_prev, settings):
-    tau = emcee.autocorr.integrated_time(chain, c=5, tol=0, quiet=True)
-    long_enough = chain.shape[0] > settings.n_tau * np.max(tau)
+    burn, tau = _burn_in(chain, settings)
+    long_enough = chain.shape[0] - burn > settings.n_tau * np.max(tau)
     stable = tau_prev is not None and np.all(np.abs(tau - tau_prev) / tau < settings.tau_rtol)
     return tau, bool(long_enough and stable and np.all(np.isfinite(tau)))
 
@@ -262,14 +329,14 @@ def run_sampler(model, *, seed: int, settings: SamplerSettings = SamplerSettings
     names = tuple(model.parameter_names)
     n_walkers = settings.walkers_for(len(names))
     fp = _fingerprint(fingerprint, seed, names, n_walkers)
-    logp = log_probability(model)
+    logp = _unit_log_probability(model)
     loop = (_resume_loop(checkpoint, fp) if resume
             else _fresh_loop(model, settings, seed, logp, n_walkers))
     sampler = emcee.EnsembleSampler(n_walkers, len(names), logp, vectorize=True, moves=_moves())
     with _progress(settings, loop.done) as bar:
         while loop.done < settings.max_steps and not loop.converged:
             _advance(loop, sampler, min(settings.chunk, settings.max_steps - loop.done), bar,
-                     settings, model.n_bodies)
+                     settings, logp)
             if checkpoint is not None:
                 _write_checkpoint(checkpoint, fp, loop)
     return _finish(names, loop, settings, time.perf_counter() - t0)
@@ -300,18 +367,25 @@ def _fresh_loop(model, settings, seed, logp, n_walkers) -> _Loop:
 
 def _resume_loop(checkpoint, fp) -> _Loop:
     saved = load_checkpoint(checkpoint, expect=fp)
-    state = emcee.State(saved["chain"][-1], log_prob=saved["log_prob"][-1],
+    state = emcee.State(saved["state_coords"], log_prob=saved["state_log_prob"],
                         blobs=saved["blobs"][-1], random_state=saved["random_state"])
     return _Loop(state, {k: [saved[k]] for k in ("chain", "log_prob", "blobs")},
                  saved["n_accepted"], list(saved["tau_history"]), saved["converged"],
                  saved["optimum_theta"], saved["optimum_log_likelihood"])
 
 
-def _advance(loop, sampler, n, bar, settings, n_bodies) -> None:
-    """Run one chunk of ``n`` steps and update the loop state and convergence test."""
+def _advance(loop, sampler, n, bar, settings, logp) -> None:
+    """Run one chunk of ``n`` steps and update the loop state and convergence test.
+
+    The chunk is stored in the user's parameters: θ and ln prior(θ) + ln L(θ).
+    """
     loop.state = _run_chunk(sampler, loop.state, n, bar)
-    for key, arr in (("chain", sampler.get_chain()), ("log_prob", sampler.get_log_prob()),
-                     ("blobs", _blobs(sampler, n_bodies, n))):
+    theta = logp.theta(sampler.get_chain())
+    blobs = _blobs(sampler, logp.model.n_bodies, n)
+    log_prior = np.asarray(logp.model.log_prior(theta.reshape(-1, theta.shape[-1])), float)
+    log_post = log_prior.reshape(theta.shape[:2]) + blobs.sum(axis=2)
+    log_post = np.where(np.isfinite(log_post), log_post, -np.inf)
+    for key, arr in (("chain", theta), ("log_prob", log_post), ("blobs", blobs)):
         loop.parts[key].append(arr)
     loop.n_accepted = loop.n_accepted + np.asarray(sampler.backend.accepted, dtype=np.int64)
     previous = loop.tau_history[-1] if loop.tau_history else None
@@ -355,9 +429,8 @@ class _progress:
 def _finish(names, loop, settings, wall):
     chain, log_prob, blobs = (np.concatenate(loop.parts[k]) for k in ("chain", "log_prob",
                                                                        "blobs"))
-    tau = np.asarray(loop.tau_history[-1])
+    burn, tau = _burn_in(chain, settings)
     tau_max = float(np.max(tau)) if np.all(np.isfinite(tau)) else float(chain.shape[0])
-    burn = min(int(np.ceil(settings.burn_tau * tau_max)), chain.shape[0] // 2)
     thin = max(1, int(settings.thin_tau * tau_max))
     run = SamplerRun(names, chain, log_prob, blobs, loop.n_accepted, tau,
                      np.asarray(loop.tau_history), bool(loop.converged), [], burn, thin,
@@ -398,6 +471,8 @@ def _write_checkpoint(path, fp, loop):
     with atomic_path(path) as tmp, h5py.File(tmp, "w") as f:
         for name in ("chain", "log_prob", "blobs"):
             f.create_dataset(name, data=np.concatenate(loop.parts[name]))
+        f.create_dataset("state_coords", data=np.asarray(loop.state.coords, float))
+        f.create_dataset("state_log_prob", data=np.asarray(loop.state.log_prob, float))
         f.create_dataset("n_accepted", data=loop.n_accepted)
         f.create_dataset("tau_history", data=np.asarray(loop.tau_history))
         f.create_dataset("rng_keys", data=np.asarray(keys, dtype=np.uint32))
@@ -429,6 +504,9 @@ def load_checkpoint(path, expect: dict | None = None) -> dict:
         with h5py.File(path, "r") as f:
             out = {k: f[k][()] for k in ("chain", "log_prob", "blobs", "n_accepted",
                                          "tau_history", "rng_keys", "optimum_theta")}
+            # absent from version-1 checkpoints (refused by the fingerprint comparison)
+            out.update({k: f[k][()] if k in f else None
+                        for k in ("state_coords", "state_log_prob")})
             rng = json.loads(f.attrs["rng"])
             out["optimum_log_likelihood"] = float(f.attrs["optimum_log_likelihood"])
             out["converged"] = bool(f.attrs["converged"])
