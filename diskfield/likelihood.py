@@ -348,6 +348,10 @@ class Model:
         zlim = np.nanmin(np.where(b.lim, z, np.inf), axis=-1)
         vlim = np.min(np.where(b.lim, var, np.inf), axis=-1)
         level = np.where(no_det, zlim, zbar)
+        if self._obliquity is not None and self.spin != "none" and ages is None:
+            from .obliquity import level_offset
+
+            level = level + level_offset(self._obliquity)
         scale = np.sqrt(np.where(no_det, vlim, v))
         return level, np.where(np.isfinite(scale), scale, 1.0)
 
@@ -383,6 +387,10 @@ class Model:
         Time-dependent envelopes: ``phi`` has shape (W, G, K) (dense nodes). Steady envelope:
         ``phi`` has shape (N,) and ``at = (wi, gi)`` gives each node's walker and body.
         """
+        if self._obliquity is not None and self.spin != "none" and ages is None:
+            from .obliquity import log_integrand_obliquity
+
+            return log_integrand_obliquity(phi, b, var, stats, self.spin, self._obliquity, at)
         if ages is not None:
             return _integrand_aged(phi, b, var, ages, self.spin, self.settings)
         wi, gi = at
@@ -620,20 +628,21 @@ def build_model(comp, profile: str = "ring", envelope: str = "steady", spin: str
     if len(comp.records) == 0 or len(comp.bodies) == 0:
         raise CompilationError("the compilation has no included records to fit",
                                source=comp.source)
-    _refuse_obliquity_prior(priors, spin)
+    _refuse_obliquity_prior(priors, spin, env)
     return Model(comp, prof, env, spin, priors, settings)
 
 
-def _refuse_obliquity_prior(priors, spin: str) -> None:
-    """A user prior on the spin obliquity is read but not yet marginalised: say so, never ignore it.
-
-    The closed forms assume isotropic spin axes (-ln u ~ Exponential(1)); a non-isotropic
-    prior needs its own quadrature over u, which this version does not have.
+def _refuse_obliquity_prior(priors, spin: str, envelope=None) -> None:
+    """A user obliquity prior is marginalised for the steady envelope (:mod:`diskfield.obliquity`);
+    with a time-dependent envelope it is refused clearly, never ignored.
     """
     if getattr(priors, "spin_obliquity", None) is None or spin == "none":
         return
+    if envelope is None or not envelope.time_dependent:
+        return
     origin = getattr(priors, "origins", {}).get("spin.obliquity", "a prior file")
     raise PriorFileError(
-        [Problem(str(origin), "a user prior on the spin obliquity is not supported by the "
-                 "likelihood in this version (isotropic axes only); remove the table to use "
-                 "isotropic axes, or fit with --spin none", column="spin.obliquity")])
+        [Problem(str(origin), "a user prior on the spin obliquity is supported with the steady "
+                 f"envelope only (got --envelope {envelope.name}); remove the table to use "
+                 "isotropic axes, fit with --envelope steady, or fit with --spin none",
+                 column="spin.obliquity")])
