@@ -23,14 +23,28 @@ Precisely, for scale s:
   ``truncated_normal``: sd and the bounds' distances to the mean times s;
 * results are clipped at physical limits (amplitude ≥ −0.99, radius ≥ 0.1 AU, width
   ≥ 0.01 AU; convention) and the ``note`` column says when clipping happened;
-* the scaled priors are written as a prior file read after the user's, and the evidence
-  is recomputed with nested sampling (same seed and settings).
+* the scaled priors are written as a prior file read after the user's (kept in the
+  model's folder); the evidence under them is obtained (column ``method``):
+
+  - scale < 1 (narrower priors, support inside the default one): by importance
+    reweighting of the default run's weighted points (:func:`diskfield.evidence.
+    reweighted_evidence`), no new run; when the reweighted points' effective sample size
+    is below :data:`diskfield.evidence.MIN_REWEIGHT_ESS` (convention) by a fresh nested
+    sampling run instead;
+  - scale > 1 (wider priors, which the default run never explored): by a fresh nested
+    sampling run (same seed and settings, checkpointed as ``dynesty_x<scale>.pkl``).
+
+Parallel work (``jobs``): every model's fit-and-evidence and every wider-prior evidence
+run are independent tasks, run on ``jobs`` worker processes (:mod:`diskfield.workers`);
+the results are identical to ``jobs=1``. Each finished task prints one progress line.
 """
 from __future__ import annotations
 
 import json
 import sys
-from dataclasses import dataclass, field
+import tempfile
+import time
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -38,12 +52,14 @@ import numpy as np
 from . import tables
 from .criteria import elpd_difference
 from .errors import ConvergenceError, OptionError
-from .evidence import DEFAULT_DLOGZ, DEFAULT_NLIVE, nested_evidence, savage_dickey
+from .evidence import (DEFAULT_DLOGZ, DEFAULT_NLIVE, MIN_REWEIGHT_ESS, nested_evidence,
+                       reweighted_evidence, savage_dickey)
 from .manifest import write_atomic, write_manifest
 from .priorspec import make_prior
 from .runs import DEFAULT_SEED, fit_model, write_inputs
 from .sampling import SamplerSettings
 from .summaries import format_rows
+from .workers import check_jobs, run_tasks
 
 __all__ = ["COMPARISON_COLUMNS", "SENSITIVITY_COLUMNS", "PRIOR_SCALES", "kass_raftery",
            "scale_prior", "ring_prior_file", "ComparisonOutcome", "compare", "verdict",
@@ -58,7 +74,7 @@ _EXTRA_COLUMNS = ("reference_model", "ln_bayes_factor_err", "two_ln_bayes_factor
                   "n_bad_pareto_k", "pareto_k_threshold", "bic_n_records", "chain_over_tau",
                   "savage_dickey_vs", "savage_dickey_ln_bf", "savage_dickey_ln_bf_err", "note")
 SENSITIVITY_COLUMNS = ("model", "ring_prior_scale", "ln_bayes_factor", "ln_bayes_factor_err",
-                       "note")
+                       "method", "reweight_ess", "note")
 PRIOR_SCALES = (0.5, 1.0, 2.0)
 
 #: model -> (nested model, parameter whose value 0 turns the model into the nested one)
@@ -200,7 +216,7 @@ def compare(comp, models=("smooth", "ring", "two-ring"), *, envelope="steady", s
             priors=None, reference="smooth", evidence=True, seed=DEFAULT_SEED, out=None,
             settings: SamplerSettings = SamplerSettings(), nlive=DEFAULT_NLIVE,
             dlogz=DEFAULT_DLOGZ, resume=False, strict=False, sensitivity=True,
-            argv=None, build=None) -> ComparisonOutcome:
+            argv=None, build=None, jobs=1, log=None) -> ComparisonOutcome:
     """Fit several models to one compilation and compare them.
 
     Parameters
@@ -227,33 +243,35 @@ def compare(comp, models=("smooth", "ring", "two-ring"), *, envelope="steady", s
     strict : bool
         Raise :class:`ConvergenceError` (after writing everything) if a fit is unconverged.
     sensitivity : bool
-        Recompute ring-model evidences under half- and double-width ring priors.
+        Ring-model evidences under half- and double-width ring priors (module docstring).
     build : callable, optional
         ``build(name, extra_prior_files) -> Model`` (default: :func:`diskfield.build_model`
-        with the options above).
+        with the options above). Called in this process only.
+    jobs : int or None
+        Worker processes for the independent fits and evidence runs (None: the usable
+        cores); capped at the number of tasks. Results do not depend on it.
+    log : callable, optional
+        ``log(str)`` receives one line per finished stage with its wall time [s].
     """
     models = _check_models(models, reference)
     out = Path(out) if out is not None else None
     build = build or _builder(comp, envelope, spin, priors)
-    fits, evid, sds = {}, {}, {}
-    for name in models:
-        model = build(name, [])
-        sub = out / name if out else None
-        # with --resume, a model whose fit never started simply starts
-        started = sub is not None and (sub / "checkpoint.h5").is_file()
-        fits[name] = fit_model(model, comp=comp, seed=seed, out=sub, settings=settings,
-                               resume=resume and started, argv=argv)
-        if evidence:
-            evid[name] = nested_evidence(model, seed=seed, nlive=nlive, dlogz=dlogz,
-                                         checkpoint_file=sub / "dynesty.pkl" if sub else None,
-                                         resume=resume,
-                                         progress=settings.progress and sys.stderr.isatty())
-            if sub:
-                write_atomic(sub / "evidence.json", json.dumps(evid[name].as_dict(), indent=2))
+    say = log or (lambda line: None)
+    built = {name: build(name, []) for name in models}
+    ringed = [n for n in models if _is_ringed(built[n])] if evidence and sensitivity else []
+    with tempfile.TemporaryDirectory() as scratch:
+        folder = (lambda name: out / name) if out is not None else (lambda name: Path(scratch))
+        wide = {(n, s): _scaled_model(built[n], n, s, build, folder(n))
+                for n in ringed for s in PRIOR_SCALES if s > 1.0}
+        narrow = {(n, s): _scaled_model(built[n], n, s, build, folder(n))
+                  for n in ringed for s in PRIOR_SCALES if s < 1.0}
+    run = _TaskRunner(comp, seed, out, settings, resume, argv, nlive, dlogz, jobs, say)
+    fits, evid, scaled = run.fits_and_wide(built, evidence, wide)
+    scaled.update(_narrow_evidence(run, evid, built, narrow))
     sds = _savage_dickey(fits, seed)
     rows = comparison_rows(fits, evid, sds, reference)
-    sens = (_sensitivity(fits, evid, reference, build, seed, nlive, dlogz, out)
-            if evidence and sensitivity else _no_sensitivity(fits, reference, evidence))
+    sens = (_sensitivity(fits, evid, scaled, reference) if ringed
+            else _no_sensitivity(fits, reference, evidence))
     result = ComparisonOutcome(fits, evid, rows, sens, verdict(rows, sens, reference), sds, out)
     if out is not None:
         _write_comparison(result, comp, seed, argv)
@@ -262,6 +280,123 @@ def compare(comp, models=("smooth", "ring", "two-ring"), *, envelope="steady", s
         raise ConvergenceError(f"unconverged fit(s): {', '.join(bad)} "
                                "(raise --max-steps or drop --strict)")
     return result
+
+
+def _is_ringed(model) -> bool:
+    return any(n.startswith("ring") for n in model.parameter_names)
+
+
+def _scaled_model(model, name, scale, build, folder):
+    """``name`` rebuilt with its ring priors scaled; the prior file is written to ``folder``."""
+    path, notes = ring_prior_file(model, scale, folder / f"ring_priors_x{scale:g}.toml")
+    return build(name, [path]), notes
+
+
+class _TaskRunner:
+    """The comparison's independent tasks on worker processes, with progress lines."""
+
+    def __init__(self, comp, seed, out, settings, resume, argv, nlive, dlogz, jobs, say):
+        self.comp, self.seed, self.out, self.settings = comp, seed, out, settings
+        self.resume, self.argv, self.nlive, self.dlogz = resume, argv, nlive, dlogz
+        self.jobs, self.say, self.t0 = jobs, say, time.perf_counter()
+
+    def run(self, tasks):
+        """``tasks``: list of (label, callable); longest first. Returns the results."""
+        jobs = check_jobs(self.jobs, len(tasks))
+        labels = [label for label, _ in tasks]
+
+        def done(i, result, seconds):
+            self.say(f"[{time.perf_counter() - self.t0:5.0f} s] {labels[i]}: "
+                     f"{_describe(result)}; {seconds:.0f} s")
+        settings = self.settings if jobs == 1 else replace(self.settings, progress=False)
+        self._task_settings = settings
+        return run_tasks([fn for _, fn in tasks], jobs, done)
+
+    def fits_and_wide(self, built, evidence, wide):
+        # expected cost grows with the number of parameters: submit the largest first
+        order = sorted(built, key=lambda n: -len(built[n].parameter_names))
+        tasks = [(f"{n} fit" + (" and evidence" if evidence else ""),
+                  lambda n=n: self._fit(built[n], n, evidence)) for n in order]
+        keys = sorted(wide, key=lambda k: -len(wide[k][0].parameter_names))
+        tasks += [(f"{n} evidence, ring priors x{s:g}",
+                   lambda k=(n, s): self._evidence(wide[k][0], k)) for n, s in keys]
+        results = dict(zip([label for label, _ in tasks], self.run(tasks)))
+        fits, evid = {}, {}
+        for n in built:  # in the order the user gave
+            fit, ev = results[tasks[order.index(n)][0]]
+            fits[n] = replace(fit, model=built[n])
+            if ev is not None:
+                evid[n] = ev
+        scaled = {k: (results[tasks[len(order) + i][0]], wide[k][1], "nested sampling", None)
+                  for i, k in enumerate(keys)}
+        return fits, evid, scaled
+
+    def _fit(self, model, name, evidence):
+        sub = self.out / name if self.out else None
+        # with --resume, a model whose fit never started simply starts
+        started = sub is not None and (sub / "checkpoint.h5").is_file()
+        fit = fit_model(model, comp=self.comp, seed=self.seed, out=sub,
+                        settings=self._task_settings, resume=self.resume and started,
+                        argv=self.argv)
+        ev = None
+        if evidence:
+            ev = nested_evidence(model, seed=self.seed, nlive=self.nlive, dlogz=self.dlogz,
+                                 checkpoint_file=sub / "dynesty.pkl" if sub else None,
+                                 resume=self.resume,
+                                 progress=self._task_settings.progress and sys.stderr.isatty())
+            if sub:
+                write_atomic(sub / "evidence.json", json.dumps(ev.as_dict(), indent=2))
+        return replace(fit, model=None), ev  # the parent holds the model
+
+    def _evidence(self, model, key):
+        name, scale = key
+        ckpt = self.out / name / f"dynesty_x{scale:g}.pkl" if self.out else None
+        ev = nested_evidence(model, seed=self.seed, nlive=self.nlive, dlogz=self.dlogz,
+                             checkpoint_file=ckpt, resume=self.resume)
+        return replace(ev, draws=None)
+
+
+def _describe(result) -> str:
+    if isinstance(result, tuple):
+        fit, ev = result
+        text = (f"MCMC {fit.run.wall_time_s:.0f} s ({fit.run.n_steps} steps, "
+                + ("converged" if fit.run.converged else "NOT converged") + ")")
+        return text + (f", evidence {ev.wall_time_s:.0f} s (ln Z = {ev.ln_evidence:.2f} "
+                       f"+- {ev.ln_evidence_err:.2f})" if ev is not None else "")
+    return f"ln Z = {result.ln_evidence:.2f} +- {result.ln_evidence_err:.2f}"
+
+
+def _narrow_evidence(run, evid, built, narrow) -> dict:
+    """Narrower ring priors: reweight the default run; fresh runs where that is too thin."""
+    scaled, fresh = {}, []
+    for (name, scale), (model, notes) in narrow.items():
+        rw = None
+        if _support_inside(model, built[name]) and evid[name].draws is not None:
+            rw = reweighted_evidence(evid[name], built[name].log_prior, model.log_prior)
+        if rw is not None and rw.ess >= MIN_REWEIGHT_ESS:
+            scaled[(name, scale)] = (rw, notes, "reweighted default run", rw.ess)
+            run.say(f"[{time.perf_counter() - run.t0:5.0f} s] {name} evidence, ring priors "
+                    f"x{scale:g}: reweighted default run, ESS {rw.ess:.0f}, "
+                    f"ln Z = {rw.ln_evidence:.2f} +- {rw.ln_evidence_err:.2f}")
+        else:
+            fresh.append(((name, scale), model, notes, rw.ess if rw is not None else None))
+    if fresh:
+        results = run.run([(f"{k[0]} evidence, ring priors x{k[1]:g}",
+                            lambda k=k, m=m: run._evidence(m, k)) for k, m, _, _ in fresh])
+        for (key, _, notes, ess), ev in zip(fresh, results):
+            why = ("nested sampling (reweighting ESS "
+                   + (f"{ess:.0f} < {MIN_REWEIGHT_ESS:g})" if ess is not None
+                      else "not applicable)"))
+            scaled[key] = (ev, notes, why, ess)
+    return scaled
+
+
+def _support_inside(new_model, old_model) -> bool:
+    """Every parameter's prior support under ``new_model`` lies inside ``old_model``'s."""
+    if new_model.parameter_names != old_model.parameter_names:
+        return False
+    return all(o.support[0] <= n.support[0] and n.support[1] <= o.support[1]
+               for n, o in zip(new_model.priors, old_model.priors))
 
 
 def _builder(comp, envelope, spin, priors):
@@ -334,44 +469,44 @@ def _row_note(f, sd) -> str:
     return " | ".join(notes)
 
 
-def _sensitivity(fits, evid, reference, build, seed, nlive, dlogz, out) -> list:
+def _sensitivity(fits, evid, scaled, reference) -> list:
     rows = []
     z_ref = evid[reference]
     for name, f in fits.items():
-        if not any(n.startswith("ring") for n in f.model.parameter_names):
+        if not _is_ringed(f.model):
             continue
         for scale in PRIOR_SCALES:
             if scale == 1.0:
-                z, notes = evid[name], ["default ring priors"]
+                z, notes, method, ess = evid[name], ["default ring priors"], "default run", None
             else:
-                z, notes = _scaled_evidence(f.model, name, scale, build, out, seed, nlive,
-                                            dlogz)
+                z, notes, method, ess = scaled[(name, scale)]
+            how = _method_note(method, ess)
             rows.append({"model": name, "ring_prior_scale": scale,
                          "ln_bayes_factor": z.ln_evidence - z_ref.ln_evidence,
                          "ln_bayes_factor_err": float(np.hypot(z.ln_evidence_err,
                                                                z_ref.ln_evidence_err)),
-                         "note": "; ".join(notes)})
+                         "method": method,
+                         "reweight_ess": float(ess) if ess is not None else np.nan,
+                         "note": "; ".join([how] * bool(how) + list(notes))})
     return rows
 
 
-def _scaled_evidence(model, name, scale, build, out, seed, nlive, dlogz):
-    """Evidence of ``name`` with its ring priors scaled; the prior file is kept in ``out``."""
-    import tempfile
-
-    with tempfile.TemporaryDirectory() as scratch:
-        folder = out / name if out is not None else Path(scratch)
-        path, notes = ring_prior_file(model, scale, folder / f"ring_priors_x{scale:g}.toml")
-        scaled = build(name, [path])
-    return nested_evidence(scaled, seed=seed, nlive=nlive, dlogz=dlogz), notes
+def _method_note(method, ess) -> str:
+    if method == "default run":
+        return ""
+    if method == "reweighted default run":
+        return ("importance reweighting of the default run's posterior points "
+                f"(ESS {ess:.0f} >= {MIN_REWEIGHT_ESS:g})")
+    return "fresh nested sampling run" if method == "nested sampling" else method
 
 
 def _no_sensitivity(fits, reference, evidence) -> list:
     why = ("evidence not computed (--no-evidence)" if not evidence
            else "prior sensitivity not requested")
     return [{"model": name, "ring_prior_scale": s, "ln_bayes_factor": np.nan,
-             "ln_bayes_factor_err": np.nan, "note": why}
+             "ln_bayes_factor_err": np.nan, "method": "", "reweight_ess": np.nan, "note": why}
             for name, f in fits.items()
-            if any(n.startswith("ring") for n in f.model.parameter_names) for s in PRIOR_SCALES]
+            if _is_ringed(f.model) for s in PRIOR_SCALES]
 
 
 # ---------------------------------------------------------------- verdict

@@ -118,6 +118,9 @@ def test_toy_comparison_finds_the_slope_and_occam_scaling(tmp_path):
         assert abs(sens[s]["ln_bayes_factor"] - expected) < 4 * np.hypot(
             sens[s]["ln_bayes_factor_err"], sens[1.0]["ln_bayes_factor_err"])
     assert "clipped" in sens[0.5]["note"]
+    # narrower priors by reweighting the default run, wider ones by a fresh run
+    assert sens[0.5]["method"] == "reweighted default run" and "reweighting" in sens[0.5]["note"]
+    assert sens[2.0]["method"] == "nested sampling" and sens[1.0]["method"] == "default run"
     saved = load_comparison(tmp_path / "cmp")
     with open(tmp_path / "cmp" / "comparison.csv") as fh:
         header = next(csv.reader(fh))
@@ -222,3 +225,40 @@ def test_compare_resume_reuses_finished_fits_and_starts_missing_ones(tmp_path):
                     evidence=False, settings=settings, out=out, resume=True)
     for name in ("smooth", "ring"):
         assert np.array_equal(first.fits[name].run.chain, again.fits[name].run.chain), name
+
+
+# ------------------------------------------------------------ worker processes
+
+def test_jobs_give_bit_identical_results_to_serial_run(tmp_path):
+    # fits, evidences and the wider-prior evidence on 2 forked workers vs in-process
+    settings = SamplerSettings(n_walkers=16, chunk=100, max_steps=300, n_starts=1)
+    lines = []
+    results = [compare(None, ["smooth", "ring"], build=_toy_builder(0.6), seed=SEED,
+                       settings=settings, nlive=30, dlogz=1.0, out=tmp_path / f"j{jobs}",
+                       jobs=jobs, log=lines.append) for jobs in (1, 2)]
+    one, two = results
+    for name in ("smooth", "ring"):
+        assert np.array_equal(one.fits[name].run.chain, two.fits[name].run.chain), name
+        assert one.evidence[name].ln_evidence == two.evidence[name].ln_evidence
+    assert [r["ln_bayes_factor"] for r in one.sensitivity] == \
+        [r["ln_bayes_factor"] for r in two.sensitivity]
+    assert ((tmp_path / "j1" / "comparison.csv").read_bytes()
+            == (tmp_path / "j2" / "comparison.csv").read_bytes())
+    # one progress line per finished task (3 tasks) or reweighting, each with a time
+    assert sum("ring fit and evidence" in line for line in lines) == 2
+    assert all(line.startswith("[") and " s]" in line for line in lines)
+
+
+def test_worker_error_surfaces_as_the_same_diskfield_error():
+    from diskfield.workers import check_jobs, run_tasks
+
+    def fail():
+        raise OptionError("--models", "nosuch", "smooth, ring")
+
+    with pytest.raises(OptionError, match="'--models': got 'nosuch'") as info:
+        run_tasks([lambda: 1, fail], jobs=2)
+    assert info.value.__class__ is OptionError
+    assert run_tasks([lambda: 1, lambda: 2, lambda: 3], jobs=2) == [1, 2, 3]
+    assert check_jobs(None, 1) == 1 and check_jobs(8, 3) == 3
+    with pytest.raises(OptionError, match="--jobs"):
+        check_jobs(0, 3)
