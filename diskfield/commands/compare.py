@@ -14,8 +14,10 @@ field profiles, ``verdict.md`` and ``verdict.json``, ``prior_sensitivity.csv``,
 Default budget (chosen for a likelihood of ~1 ms per 64-walker call, where the demo's
 three-model comparison with evidence takes about two minutes on 2 cores): 32 walkers,
 convergence checks every 500 steps up to 10 000 steps, nested sampling with 100 live
-points to a remaining Δln Z < 0.5; the prior-sensitivity check adds two nested-sampling
-runs per ringed model. Raise ``--max-steps`` and ``--nlive`` for a final answer.
+points to a remaining Δln Z < 0.5; the prior-sensitivity check adds one nested-sampling
+run per ringed model (one run under the doubled priors; the halved priors by reweighting
+the default run). Raise ``--max-steps`` and ``--nlive`` for a final answer. ``--jobs N``
+runs the models' fits and evidence runs on N worker processes (default: the usable cores).
 """
 from __future__ import annotations
 
@@ -28,7 +30,7 @@ from ..records import read_compilation
 from ..runs import DEFAULT_SEED
 from .fit import add_model_options, sampler_settings
 
-__all__ = ["NAME", "HELP", "add_arguments", "run"]
+__all__ = ["NAME", "HELP", "add_arguments", "add_jobs_option", "run"]
 
 NAME = "compare"
 HELP = "fit several models, compare them (criteria, evidence) and write a verdict"
@@ -45,8 +47,22 @@ def add_arguments(parser) -> None:
                         help="skip nested sampling (no ln Z, Bayes factors or sensitivity)")
     parser.add_argument("--nlive", type=int, default=DEFAULT_NLIVE, metavar="N",
                         help=f"nested-sampling live points (default: {DEFAULT_NLIVE})")
+    add_jobs_option(parser)
     parser.add_argument("--dlogz", type=float, default=DEFAULT_DLOGZ, metavar="X",
                         help=f"nested-sampling stopping tolerance in ln Z (default: {DEFAULT_DLOGZ})")
+
+
+def add_jobs_option(parser) -> None:
+    """``--jobs N``: worker processes for the independent fits and evidence runs."""
+    parser.add_argument("--jobs", type=int, default=None, metavar="N",
+                        help="worker processes for the independent fits and evidence runs "
+                             "(default: the usable cores, at most one per task; 1: none); "
+                             "results do not depend on it")
+
+
+def progress_printer():
+    """``log`` for :func:`diskfield.comparison.compare`: print each line at once."""
+    return lambda line: print("   " + line, flush=True)
 
 
 def run(args) -> int:
@@ -63,7 +79,8 @@ def run(args) -> int:
                      evidence=not args.no_evidence,
                      seed=DEFAULT_SEED if args.seed is None else args.seed, out=out,
                      settings=settings, nlive=args.nlive, dlogz=args.dlogz,
-                     resume=args.resume, strict=args.strict)
+                     resume=args.resume, strict=args.strict, jobs=args.jobs,
+                     log=progress_printer())
     print(result.verdict["sentence"])
     print(f"written to {out} (verdict.md, comparison.csv)")
     return 0

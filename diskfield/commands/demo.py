@@ -23,6 +23,7 @@ from ..runs import DEFAULT_SEED
 from ..sampling import SamplerSettings
 from ..truth import truth_recovery, write_truth_recovery
 from .check import format_summary, summarize
+from .compare import add_jobs_option, progress_printer
 
 __all__ = ["NAME", "HELP", "add_arguments", "run", "DEMO_MODELS"]
 
@@ -38,6 +39,7 @@ def add_arguments(parser) -> None:
     parser.add_argument("--quiet", action="store_true", help="no progress bars")
     parser.add_argument("--resume", action="store_true",
                         help="continue an interrupted demo in the same --out folder")
+    add_jobs_option(parser)
 
 
 def run(args) -> int:
@@ -56,7 +58,8 @@ def run(args) -> int:
     result = compare(comp, DEMO_MODELS, seed=seed, out=out, resume=args.resume,
                      settings=SamplerSettings(progress=not args.quiet),
                      argv=["diskfield", "demo", *_argv(args)],
-                     build=_announcing_builder(comp, start))
+                     build=_announcing_builder(comp, start), jobs=args.jobs,
+                     log=progress_printer())
     print("== 3/4 compare with the declared truth of the scenario")
     truth = tomllib.loads((data / "truth.toml").read_text())
     recovery = truth_recovery(out, truth)
