@@ -422,9 +422,18 @@ def _savage_dickey(fits, seed) -> dict:
         if param not in names:
             continue
         i = names.index(param)
-        out[name] = (nested, savage_dickey(f.run.draws()[..., i], f.model.priors[i],
-                                           parameter=param, value=0.0, seed=seed))
+        out[name] = (nested, _savage_dickey_one(f, i, param, seed))
     return out
+
+
+def _savage_dickey_one(fit, i, param, seed):
+    """Savage–Dickey at ``param = 0``; under a label ordering the exchangeable copies of
+    ``param`` are pooled (the unordered model's symmetrised posterior, :mod:`.evidence`)."""
+    ordering = getattr(fit.model, "ordering", None)
+    cols = ordering.copies(i) if ordering is not None else (i,)
+    draws = fit.run.draws()[..., list(cols)] if len(cols) > 1 else fit.run.draws()[..., i]
+    return savage_dickey(draws, fit.model.priors[i], parameter=param, value=0.0, seed=seed,
+                         exchangeable=len(cols) > 1)
 
 
 def comparison_rows(fits, evid, sds, reference) -> list:

@@ -20,7 +20,11 @@ JASA 90, 614): for a model that reduces to a simpler one at ``φ = φ0`` with in
 priors, ``B_simple,full = p(φ0 | D, full) / p(φ0 | full)``. The posterior density at φ0
 is a Gaussian kernel density estimate over the full model's draws; it is a cross-check,
 not the reported evidence, and is "not applicable" when φ0 lies outside (or on the edge
-of) the prior support.
+of) the prior support. Under a label ordering (:mod:`diskfield.ordering`) the ordered
+prior does not nest cleanly (at φ0 the other group's conditional prior is not its own
+prior); the exact ratio of the symmetric, unordered model uses the symmetrised posterior,
+whose marginal is the mean of the k exchangeable copies' marginals: the copies' draws are
+pooled (``exchangeable=True``) against the unchanged one-group prior density.
 """
 from __future__ import annotations
 
@@ -312,15 +316,17 @@ class SavageDickey:
 
 
 def savage_dickey(draws, prior, *, parameter: str, value: float = 0.0,
-                  seed: int = 0, n_boot: int = 50) -> SavageDickey:
+                  seed: int = 0, n_boot: int = 50, exchangeable: bool = False) -> SavageDickey:
     """Savage–Dickey ln B (full over nested) at ``parameter = value``.
 
     Parameters
     ----------
     draws : array_like
-        Posterior draws of the parameter under the full model (any shape, flattened).
+        Posterior draws of the parameter under the full model (any shape, flattened); with
+        ``exchangeable``, shape (..., k): each row holds the k exchangeable copies of the
+        parameter in one posterior draw (e.g. ``ring_amplitude``, ``ring2_amplitude``).
     prior : diskfield.priorspec.Prior
-        Its prior under the full model.
+        Its prior under the full model (one copy's prior: the groups' priors are identical).
     parameter : str
         Name, for reports.
     value : float
@@ -329,6 +335,9 @@ def savage_dickey(draws, prior, *, parameter: str, value: float = 0.0,
         Seed of the bootstrap.
     n_boot : int
         Bootstrap resamples for the error.
+    exchangeable : bool
+        Pool the copies (the symmetrised posterior's marginal) for the density estimate; the
+        bootstrap resamples whole draws (rows), keeping the copies of a draw together.
     """
     lo, hi = prior.support
     if prior.is_fixed:
@@ -337,7 +346,9 @@ def savage_dickey(draws, prior, *, parameter: str, value: float = 0.0,
         return SavageDickey(parameter, value, False,
                             f"{parameter} = {value:g} is outside the open prior support "
                             f"({lo:g}, {hi:g}); the models do not nest there")
-    x = np.asarray(draws, float).ravel()
+    arr = np.asarray(draws, float)
+    rows = arr.reshape(-1, arr.shape[-1]) if exchangeable else arr.reshape(-1, 1)
+    x = rows.ravel()
     prior_density = float(np.exp(prior.log_prob(value)))
     post = float(stats.gaussian_kde(x)(value)[0])
     if post <= 0:
@@ -346,7 +357,8 @@ def savage_dickey(draws, prior, *, parameter: str, value: float = 0.0,
                             "ratio cannot be estimated (the nested model is strongly disfavoured)",
                             posterior_density=post, prior_density=prior_density)
     rng = np.random.default_rng(seed)
-    boot = [stats.gaussian_kde(rng.choice(x, x.size))(value)[0] for _ in range(n_boot)]
+    boot = [stats.gaussian_kde(rows[rng.integers(0, len(rows), len(rows))].ravel())(value)[0]
+            for _ in range(n_boot)]
     boot = np.log(np.maximum(boot, 1e-300))
     return SavageDickey(parameter, value, True, "", np.log(prior_density) - np.log(post),
                         float(np.std(boot, ddof=1)), post, prior_density)

@@ -27,6 +27,7 @@ from . import steady
 from ._lkcommon import _detection_stats, _expand, _finite_support
 from .aged import _age_priors, _age_rule, _integrand_aged
 from .errors import CompilationError, OptionError, PriorFileError, Problem
+from .ordering import label_ordering
 from .priorspec import Uniform
 from .recording import record_terms
 
@@ -109,6 +110,8 @@ class Model:
         self.fixed = {n: p.value for n, p in zip(names, all_priors) if p.is_fixed}
         self.parameter_names = tuple(n for n in names if n not in self.fixed)
         self.priors = tuple(p for p in all_priors if not p.is_fixed)
+        self.ordering = label_ordering(profile, dict(zip(names, all_priors)),
+                                       self.parameter_names)
         self.body_names = comp.body_names
         self.n_records = len(comp.records)
         self.n_bodies = len(comp.bodies)
@@ -118,7 +121,8 @@ class Model:
         self._ages = _age_priors(comp, priorset) if envelope.time_dependent else None
         self._obliquity = getattr(priorset, "spin_obliquity", None)
         self.config = {"profile": profile.name, "envelope": envelope.name, "spin": spin,
-                       "prior_files": [str(f) for f in getattr(priorset, "files", ())]}
+                       "prior_files": [str(f) for f in getattr(priorset, "files", ())],
+                       "label_ordering": self.ordering.describe()}
 
     # ------------------------------------------------------------------ parameters
     def _theta(self, theta):
@@ -137,7 +141,12 @@ class Model:
         return out
 
     def log_prior(self, theta):
-        """Sum of the parameters' log prior densities; ``-inf`` outside the support.
+        """Log density of the (normalised) prior; ``-inf`` outside the support.
+
+        The sum of the parameters' log prior densities; under a label ordering
+        (``self.ordering``, :mod:`diskfield.ordering`) plus ln k! inside the ordered region
+        and ``-inf`` outside it, so that it stays the normalised density of the points
+        :meth:`prior_transform` produces.
 
         Parameters
         ----------
@@ -148,20 +157,37 @@ class Model:
         ndarray, shape (W,) (or float for 1-d input)
         """
         t2, one = self._theta(theta)
-        lp = np.zeros(len(t2))
-        for i, prior in enumerate(self.priors):
-            lp += prior.log_prob(t2[:, i])
+        lp = self._log_prior_product(t2)
+        if self.ordering.applied:
+            lp = np.where(self.ordering.in_order(t2), lp + self.ordering.log_norm, -np.inf)
         lp[~np.isfinite(lp)] = -np.inf
         return float(lp[0]) if one else lp
 
+    def _log_prior_product(self, t2):
+        """Σ of the parameters' own log prior densities at ``t2`` (W, P), no ordering."""
+        lp = np.zeros(len(t2))
+        for i, prior in enumerate(self.priors):
+            lp += prior.log_prob(t2[:, i])
+        return lp
+
+    def _in_support(self, t2):
+        """Rows of ``t2`` (W, P) inside every parameter's prior support (the likelihood is
+        defined there whatever the label order)."""
+        return np.isfinite(self._log_prior_product(t2))
+
     def prior_transform(self, u):
         """Map the unit cube to parameter values (nested sampling).
+
+        Under a label ordering the exchangeable groups of ``u`` are first sorted by their key
+        (a k!-to-1 fold onto the ordered prior; :mod:`diskfield.ordering`).
 
         Parameters
         ----------
         u : ndarray, shape (P,) or (W, P), values in [0, 1]
         """
         u = np.asarray(u, dtype=float)
+        if self.ordering.applied:
+            u = self.ordering.sort(u)
         out = np.empty_like(u)
         for i, prior in enumerate(self.priors):
             out[..., i] = prior.ppf(u[..., i])
@@ -182,7 +208,7 @@ class Model:
         """
         t2, one = self._theta(theta)
         out = np.full((len(t2), self.n_bodies), -np.inf)
-        ok = np.isfinite(self.log_prior(t2))
+        ok = self._in_support(t2)
         if np.any(ok):
             with np.errstate(all="ignore"):
                 ll = self._body_loglike(self.params(t2[ok]))
@@ -257,7 +283,7 @@ class Model:
         b = self._bodies
         var = np.maximum(b.var_fixed + p["intrinsic_scatter"][:, None, None] ** 2, _MIN_VAR)
         stats = _detection_stats(b.z, var, b.det)
-        ages = _age_rule(self._ages, self.envelope, p, self.settings) if self._ages else None
+        ages = _age_rule(self._ages, self.envelope, p, self.settings, var) if self._ages else None
         level, scale = self._level(b, var, stats, ages)
         return var, stats, ages, self._distance_rule(p, level, scale)
 

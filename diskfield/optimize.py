@@ -30,7 +30,8 @@ class Optimum:
     log_likelihood : float
         ln L at ``theta`` (natural log).
     u : ndarray, shape (P,)
-        Unit-cube coordinates of ``theta``.
+        Unit-cube coordinates of ``theta`` (inside the ordered region of a label ordering,
+        where ``prior_transform`` is one-to-one).
     starts : ndarray, shape (n_starts, P)
         Polished optimum of every start (best first).
     start_log_likelihoods : ndarray, shape (n_starts,)
@@ -99,6 +100,10 @@ def maximize_likelihood(model, rng: np.random.Generator, *, n_starts: int = 3,
         found.append((-float(res.fun), special.expit(res.x)))
     found.sort(key=lambda item: -item[0])
     u_best = np.array([f[1] for f in found])
+    ordering = getattr(model, "ordering", None)
+    if ordering is not None and ordering.applied:
+        # prior_transform folds any u onto the ordered prior; u itself is mapped there too
+        u_best = ordering.sort(u_best)
     values = np.array([f[0] for f in found])
     thetas = unit_to_theta(model, u_best)
     return Optimum(theta=thetas[0], log_likelihood=float(values[0]), u=u_best[0],

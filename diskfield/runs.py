@@ -129,9 +129,12 @@ def _fingerprint(model, comp) -> dict:
     digest = hashlib.sha256()
     for path in cfg.get("prior_files", ()):
         digest.update(Path(path).read_bytes() if Path(path).is_file() else str(path).encode())
-    return {"data_hash": getattr(comp, "data_hash", ""), "profile": cfg.get("profile", ""),
-            "envelope": cfg.get("envelope", ""), "spin": cfg.get("spin", ""),
-            "priors_hash": digest.hexdigest()}
+    fp = {"data_hash": getattr(comp, "data_hash", ""), "profile": cfg.get("profile", ""),
+          "envelope": cfg.get("envelope", ""), "spin": cfg.get("spin", ""),
+          "priors_hash": digest.hexdigest()}
+    if cfg.get("label_ordering"):  # a checkpoint sampled without the ordering is refused
+        fp["label_ordering"] = cfg["label_ordering"]
+    return fp
 
 
 def _observed(comp):
@@ -147,9 +150,16 @@ def _attrs(model, comp, run, seed) -> dict:
     return {"schema_version": SCHEMA_VERSION, "diskfield_version": __version__,
             "profile": cfg.get("profile", ""), "envelope": cfg.get("envelope", ""),
             "spin": cfg.get("spin", ""), "seed": int(seed),
+            "label_ordering": cfg.get("label_ordering", ""),
+            "label_ordering_applied": int(_ordering_applied(model)),
             "data_hash": getattr(comp, "data_hash", ""), "converged": int(run.converged),
             "n_steps": int(run.n_steps), "tau_max": float(np.max(run.tau)),
             "created": utc_now()}
+
+
+def _ordering_applied(model) -> bool:
+    ordering = getattr(model, "ordering", None)
+    return bool(ordering is not None and ordering.applied)
 
 
 def _fit_json(model, run, crit, seed) -> dict:
@@ -159,6 +169,8 @@ def _fit_json(model, run, crit, seed) -> dict:
         "schema_version": SCHEMA_VERSION, "model": cfg.get("profile", ""),
         "profile": cfg.get("profile", ""), "envelope": cfg.get("envelope", ""),
         "spin": cfg.get("spin", ""), "parameter_names": names,
+        "label_ordering": {"applied": _ordering_applied(model),
+                           "note": cfg.get("label_ordering", "")},
         "fixed": {k: float(v) for k, v in getattr(model, "fixed", {}).items()},
         "converged": bool(run.converged), "flags": list(run.flags) + _k_flags(crit),
         "n_walkers": int(run.n_walkers), "n_steps": int(run.n_steps),

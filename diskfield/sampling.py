@@ -210,8 +210,10 @@ class _unit_log_probability:
     """Vectorised log-density in ``z = logit(u)`` with per-body log-likelihoods as blobs.
 
     Column 0 is ln L(θ) + Σ [ln u + ln(1 − u)] with θ = ``prior_transform(expit(z))``
-    (``-inf`` where θ has zero prior density or ln L is not finite); columns 1.. are the
-    per-body ln L. A plain class so that it pickles.
+    (``-inf`` where θ has zero prior density or ln L is not finite, and outside the ordered
+    region of a label ordering: the walkers sample the ordered prior's copy of the
+    posterior, :mod:`diskfield.ordering`); columns 1.. are the per-body ln L. A plain
+    class so that it pickles.
     """
 
     def __init__(self, model):
@@ -229,6 +231,9 @@ class _unit_log_probability:
         log_jac = -(np.logaddexp(0.0, z) + np.logaddexp(0.0, -z)).sum(axis=1)
         theta = self.theta(z)
         ok = np.isfinite(log_jac) & np.isfinite(np.asarray(self.model.log_prior(theta), float))
+        ordering = _ordering(self.model)
+        if ordering is not None:
+            ok &= ordering.in_order(z)  # logit is increasing: order in z = order in u
         pointwise = np.full((z.shape[0], n_bodies), -np.inf)
         if np.any(ok):
             pointwise[ok] = self.model.log_likelihood_pointwise(theta[ok])
@@ -242,17 +247,30 @@ def _moves():
             (emcee.moves.StretchMove(), 0.2)]
 
 
+def _ordering(model):
+    """The model's label ordering when one is applied, else None (toy models have none)."""
+    ordering = getattr(model, "ordering", None)
+    return ordering if ordering is not None and ordering.applied else None
+
+
+def _into_order(model, z):
+    """``z`` with exchangeable groups swapped whole into the ordered region (if any)."""
+    ordering = _ordering(model)
+    return z if ordering is None else ordering.sort(z)
+
+
 def _initial_walkers(model, optimum, rng, n_walkers, ball, logp):
     """Ball of walkers around the optimum (unit-cube spread ``ball``), as z = logit(u),
-    all with a finite log-density."""
+    all with a finite log-density (and inside the ordered region of a label ordering)."""
     n_params = len(model.parameter_names)
     u = np.clip(optimum.u + ball * rng.standard_normal((n_walkers, n_params)), 1e-6, 1 - 1e-6)
-    z = special.logit(u)
+    z = _into_order(model, special.logit(u))
     for _ in range(100):
         bad = ~np.isfinite(logp(z)[:, 0])
         if not np.any(bad):
             return z
-        z[bad] = special.logit(rng.uniform(1e-6, 1 - 1e-6, size=(bad.sum(), n_params)))
+        z[bad] = _into_order(model, special.logit(
+            rng.uniform(1e-6, 1 - 1e-6, size=(bad.sum(), n_params))))
     raise ConvergenceError("could not find walker starting positions with a finite posterior "
                            "in 100 tries: the likelihood is -inf wherever the priors allow; "
                            "check the prior files against the data")

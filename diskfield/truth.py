@@ -17,7 +17,7 @@ from . import azadapter
 from .manifest import write_atomic
 from .runs import load_comparison
 
-__all__ = ["truth_recovery", "write_truth_recovery", "RECOVERY_COLUMNS"]
+__all__ = ["truth_recovery", "write_truth_recovery", "ordered_truth", "RECOVERY_COLUMNS"]
 
 RECOVERY_COLUMNS = ("parameter", "true_value", "median", "q05", "q95", "posterior_quantile",
                     "inside_90")
@@ -57,8 +57,12 @@ def truth_recovery(comparison_dir, truth: dict) -> dict:
     true_model = truth.get("meta", {}).get("profile", "")
     rows, not_sampled = [], []
     if true_model in saved.fits:
-        draws = azadapter.posterior_arrays(saved.fits[true_model].idata)
-        for name, value in truth.get("parameters", {}).items():
+        fit = saved.fits[true_model]
+        draws = azadapter.posterior_arrays(fit.idata)
+        values = truth.get("parameters", {})
+        if (fit.fit.get("label_ordering") or {}).get("applied"):
+            values = ordered_truth(true_model, values)
+        for name, value in values.items():
             if name in draws:
                 rows.append(_parameter_row(name, value, np.ravel(draws[name])))
             else:
@@ -67,6 +71,29 @@ def truth_recovery(comparison_dir, truth: dict) -> dict:
             "rows": rows,
             "not_sampled": not_sampled,
             "sentence": _sentence(true_model, rows, saved.verdict, true_model in saved.fits)}
+
+
+def ordered_truth(profile: str, values: dict) -> dict:
+    """True values relabelled as a label-ordered fit labels them (:mod:`diskfield.ordering`).
+
+    The fit's ``ring`` is the inner ring whatever the truth file calls it: the true groups are
+    sorted by the profile's key (e.g. radius) when the truth gives every key; otherwise the
+    truth is returned unchanged (a lone ``ring2_radius`` cannot be placed).
+    """
+    from .profiles import get_profile
+
+    out = dict(values)
+    for ex in get_profile(profile).exchangeable:
+        if not all(k in values for k in ex.keys):
+            continue
+        order = sorted(range(len(ex.prefixes)), key=lambda g: values[ex.keys[g]])
+        for g, src in enumerate(order):
+            for name, src_name in zip(ex.groups[g], ex.groups[src]):
+                if src_name in values:
+                    out[name] = values[src_name]
+                else:
+                    out.pop(name, None)
+    return out
 
 
 def _sentence(true_model: str, rows: list, verdict: dict, fitted: bool) -> str:

@@ -6,7 +6,7 @@ register through the entry-point group ``diskfield.profiles`` (see :mod:`.regist
 """
 from __future__ import annotations
 
-from .base import Envelope, Parameter, RadialProfile
+from .base import Envelope, Exchangeable, Parameter, RadialProfile
 from .registry import (
     ENTRY_POINT_GROUP,
     all_components,
@@ -19,6 +19,7 @@ from .registry import (
 
 __all__ = [
     "Parameter",
+    "Exchangeable",
     "RadialProfile",
     "Envelope",
     "ENTRY_POINT_GROUP",

@@ -19,7 +19,7 @@ from typing import Any, Callable, Mapping
 
 import numpy as np
 
-__all__ = ["Parameter", "RadialProfile", "Envelope"]
+__all__ = ["Parameter", "Exchangeable", "RadialProfile", "Envelope"]
 
 
 @dataclass(frozen=True)
@@ -65,6 +65,43 @@ class Parameter:
 
 
 @dataclass(frozen=True)
+class Exchangeable:
+    """Parameter groups a component treats symmetrically (e.g. the two rings of ``two-ring``).
+
+    The function's value is unchanged when whole groups are swapped, so with identical priors
+    on the groups the posterior has k! copies of every mode (label switching). The model then
+    orders the groups by one member (:mod:`diskfield.ordering`): the first prefix gets the
+    smallest key. Stable names stay: group ``g`` is ``<prefixes[g]>_<member>``.
+
+    Attributes
+    ----------
+    prefixes : tuple of str
+        One prefix per group, in the order the key increases (``("ring", "ring2")``).
+    members : tuple of str
+        Member suffixes shared by every group (``("amplitude", "radius", "width")``).
+    order_by : str
+        The member whose values order the groups (``"radius"``: ring = inner).
+    labels : tuple of str, optional
+        Plain words for each group once ordered (``("inner", "outer")``), for reports.
+    """
+
+    prefixes: tuple[str, ...]
+    members: tuple[str, ...]
+    order_by: str
+    labels: tuple[str, ...] = ()
+
+    @property
+    def groups(self) -> tuple[tuple[str, ...], ...]:
+        """Parameter names of each group, members in declaration order."""
+        return tuple(tuple(f"{p}_{m}" for m in self.members) for p in self.prefixes)
+
+    @property
+    def keys(self) -> tuple[str, ...]:
+        """The ordering parameter of each group (``ring_radius``, ``ring2_radius``)."""
+        return tuple(f"{p}_{self.order_by}" for p in self.prefixes)
+
+
+@dataclass(frozen=True)
 class RadialProfile:
     """A radial field profile plug-in.
 
@@ -78,6 +115,8 @@ class RadialProfile:
         ``log_field(r_au, p) -> ndarray`` of ln(R / uT); see module docstring.
     formula : str
         The formula in plain text (shown by ``diskfield profiles`` and in reports).
+    exchangeable : tuple of Exchangeable
+        Parameter groups ``log_field`` treats symmetrically (empty: none).
     """
 
     name: str
@@ -86,6 +125,7 @@ class RadialProfile:
     log_field: Callable[[np.ndarray, Mapping[str, np.ndarray]], np.ndarray]
     formula: str = ""
     kind: str = "radial"
+    exchangeable: tuple[Exchangeable, ...] = ()
 
     @property
     def parameter_names(self) -> tuple[str, ...]:

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .base import Parameter, RadialProfile
+from .base import Exchangeable, Parameter, RadialProfile
 from .smooth import FIELD_1AU, POWER_INDEX, log_power_law
 
 __all__ = ["MIN_RING_FACTOR", "log_ring_factor", "ring_parameters", "RING", "TWO_RING"]
@@ -78,7 +78,9 @@ def _log_field_two_ring(r_au, p):
     R(r) = field_1au (r / 1 AU)^(-power_index) * (1 + A1 g1(r)) * (1 + A2 g2(r)) [uT], with
     g_k = exp(-(r - r_k)^2 / (2 w_k^2)); ring 1 is ``ring_*``, ring 2 is ``ring2_*``. The
     product (rather than a sum) keeps the field positive for any signed amplitudes > -1.
-    The two rings are exchangeable: the likelihood is symmetric under swapping them.
+    The two rings are exchangeable: the likelihood is symmetric under swapping them. With
+    identical priors on both rings the model orders them by radius (``ring_radius <=
+    ring2_radius``: ring = inner, ring2 = outer; :mod:`diskfield.ordering`).
     """
     return (_log_field_ring(r_au, p)
             + log_ring_factor(r_au, p["ring2_amplitude"], p["ring2_radius"], p["ring2_width"]))
@@ -100,4 +102,6 @@ TWO_RING = RadialProfile(
     log_field=_log_field_two_ring,
     formula=("R(r) = field_1au * (r / 1 AU)^(-power_index) * (1 + ring_amplitude * g1(r)) * "
              "(1 + ring2_amplitude * g2(r)),  g_k = exp(-(r - r_k)^2 / (2 w_k^2))"),
+    exchangeable=(Exchangeable(("ring", "ring2"), ("amplitude", "radius", "width"), "radius",
+                               ("inner", "outer")),),
 )
