@@ -172,6 +172,38 @@ def _check_normalisation(comp, cols, fail) -> None:
         fail(f"envelope is not normalised: ln T(0) = {float(np.max(np.abs(out))):.3g} (must be 0)")
 
 
+def _check_exchangeable(comp, fail) -> bool:
+    """Declared exchangeable groups name declared parameters and their key (plug-in contract
+    of :class:`~diskfield.profiles.base.Exchangeable`)."""
+    names = set(comp.parameter_names)
+    ok = True
+    for ex in getattr(comp, "exchangeable", ()):
+        missing = sorted({n for g in ex.groups for n in g} - names)
+        if len(ex.prefixes) < 2 or missing or ex.order_by not in ex.members:
+            fail(f"exchangeable groups {ex.prefixes}: need >= 2 groups of declared parameters "
+                 f"and order_by among the members; undeclared: {', '.join(missing) or 'none'}")
+            ok = False
+        if ex.labels and len(ex.labels) != len(ex.prefixes):
+            fail(f"exchangeable groups {ex.prefixes}: {len(ex.labels)} labels for "
+                 f"{len(ex.prefixes)} groups")
+            ok = False
+    return ok
+
+
+def _check_symmetry(comp, x, cols, out, fail) -> None:
+    """The function is unchanged when declared exchangeable groups are swapped."""
+    for ex in getattr(comp, "exchangeable", ()):
+        for g in range(1, len(ex.groups)):  # transpositions with the first group generate all
+            swapped = dict(cols)
+            for a, b in zip(ex.groups[0], ex.groups[g]):
+                swapped[a], swapped[b] = cols[b], cols[a]
+            again = _evaluate(comp, x, swapped, x.ndim - 1)
+            if not np.allclose(again, out, rtol=1e-10, atol=1e-10):
+                fail(f"exchangeable groups {ex.prefixes}: swapping {ex.prefixes[0]} and "
+                     f"{ex.prefixes[g]} changes the function, so they are not exchangeable")
+                return
+
+
 def _check_function(comp, priors, rng, fail) -> None:
     cols = _draws(priors, rng) if priors else {}
     n = len(next(iter(cols.values()))) if cols else _N_DRAWS
@@ -186,6 +218,7 @@ def _check_function(comp, priors, rng, fail) -> None:
         if _check_values(comp, x, out, label, fail):
             _check_purity(comp, x, cols, out, fail)
             _check_per_walker(comp, x, cols, out, fail)
+            _check_symmetry(comp, x, cols, out, fail)
     _check_normalisation(comp, cols, fail)
 
 
@@ -210,13 +243,17 @@ def check_profile(component, priors=None, seed: int = 20240611) -> None:
         prior inside the declared domain; a function that is vectorised over walkers x nodes
         and walkers x groups x nodes (output shape = input shape, parameters broadcast per
         walker), pure (same output, inputs not mutated), finite and never NaN over random
-        draws from the priors and at their support edges; envelopes with ln T(0) = 0.
+        draws from the priors and at their support edges; envelopes with ln T(0) = 0;
+        declared exchangeable groups made of declared parameters, whose swap leaves the
+        function unchanged.
     """
     failures: list[str] = []
     fail = failures.append
     _check_declaration(component, fail)
     if not failures:
         _check_parameters(component, fail)
+        if isinstance(component, RadialProfile):
+            _check_exchangeable(component, fail)
         found = _priors_for(component, priors, fail)
         if not failures:
             _check_function(component, found, np.random.default_rng(seed), fail)

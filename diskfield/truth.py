@@ -51,17 +51,20 @@ def truth_recovery(comparison_dir, truth: dict) -> dict:
         parameter that the generating model samples; columns :data:`RECOVERY_COLUMNS`),
         ``not_sampled`` (true parameters the fitted model does not have), and a plain
         ``sentence`` (parameter coverage, and whether the comparison's ring/no-ring answer
-        matches the generating model).
+        matches the generating model), ``relabelled`` (True when the fit ordered its
+        exchangeable groups and the truth's labels were sorted the same way:
+        :func:`ordered_truth`).
     """
     saved = load_comparison(comparison_dir)
     true_model = truth.get("meta", {}).get("profile", "")
-    rows, not_sampled = [], []
+    rows, not_sampled, relabelled = [], [], False
     if true_model in saved.fits:
         fit = saved.fits[true_model]
         draws = azadapter.posterior_arrays(fit.idata)
         values = truth.get("parameters", {})
         if (fit.fit.get("label_ordering") or {}).get("applied"):
             values = ordered_truth(true_model, values)
+            relabelled = values != truth.get("parameters", {})
         for name, value in values.items():
             if name in draws:
                 rows.append(_parameter_row(name, value, np.ravel(draws[name])))
@@ -69,8 +72,10 @@ def truth_recovery(comparison_dir, truth: dict) -> dict:
                 not_sampled.append(name)
     return {"true_model": true_model, "ring_demanded": bool(saved.verdict.get("ring_demanded")),
             "rows": rows,
-            "not_sampled": not_sampled,
-            "sentence": _sentence(true_model, rows, saved.verdict, true_model in saved.fits)}
+            "not_sampled": not_sampled, "relabelled": relabelled,
+            "sentence": _sentence(true_model, rows, saved.verdict, true_model in saved.fits)
+            + (" The true exchangeable groups (rings) were relabelled in the fit's order "
+               "(by radius: ring = inner) before the comparison." if relabelled else "")}
 
 
 def ordered_truth(profile: str, values: dict) -> dict:

@@ -348,6 +348,24 @@ def test_truth_is_relabelled_like_the_fit():
     assert ordered_truth("ring", {"ring_radius": 6.0}) == {"ring_radius": 6.0}
 
 
+def test_conformance_check_covers_exchangeable_declarations():
+    from dataclasses import replace
+
+    from diskfield.testing import check_profile
+
+    check_profile(get_profile("two-ring"))
+    ring = get_profile("ring")
+    two = get_profile("two-ring")
+    bogus = replace(ring, name="bogus", exchangeable=two.exchangeable)   # ring2_* undeclared
+    with pytest.raises(AssertionError, match="undeclared: ring2_amplitude"):
+        check_profile(bogus)
+    # a profile whose second ring enters differently is not exchangeable
+    lopsided = replace(two, name="lopsided",
+                       log_field=lambda r, p: two.log_field(r, p) + 0.1 * p["ring2_width"])
+    with pytest.raises(AssertionError, match="not exchangeable"):
+        check_profile(lopsided)
+
+
 def test_declared_groups_name_declared_parameters():
     prof = get_profile("two-ring")
     (ex,) = prof.exchangeable
