@@ -79,6 +79,8 @@ def diagnose(comp, profile, seed, settings, blocks):
           f"wall {wall:.0f} s (shared machine, for orientation only)")
     for f in run.flags:
         print("   flag:", f)
+    if model.config.get("label_ordering"):
+        print("   label ordering:", model.config["label_ordering"])
     full, post, half = _tau(chain), _tau(chain[run.burn_in:]), _tau(chain[S // 2:])
     print(f"   {'parameter':18s} {'tau(all)':>9s} {'tau(post-burn)':>14s} {'tau(2nd half)':>13s}"
           f" {'driver tau':>10s}")

@@ -99,6 +99,17 @@ def test_ordering_applied_iff_the_ring_priors_are_identical(small_compilation, t
     theta = m.prior_transform(u)
     lp_product = sum(p.log_prob(theta[:, i]) for i, p in enumerate(m.priors))
     np.testing.assert_array_equal(m.log_prior(theta), lp_product)
+    # `diskfield profiles` says the same under the same prior files
+    from diskfield.commands.profiles import describe_components
+    from diskfield.priorset import load_priors
+
+    def listed(files):
+        info = describe_components(load_priors(files))
+        return {c["name"]: c.get("label_ordering") for c in info["profiles"]}
+
+    assert listed(None)["two-ring"] == default.config["label_ordering"]
+    assert listed([other])["two-ring"] == m.config["label_ordering"]
+    assert listed(None)["ring"] is None
     # profiles without exchangeable groups have no ordering and an empty note
     ring = build_model(small_compilation, profile="ring")
     assert not ring.ordering.applied and ring.config["label_ordering"] == ""

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import json
 
+from ..ordering import label_ordering
 from ..priorset import LIKELIHOOD_PARAMETERS, PriorSet, load_priors
 from ..profiles.base import Envelope, RadialProfile
 from ..profiles.registry import all_components
@@ -52,13 +53,18 @@ def _parameter_info(par, priors: PriorSet) -> dict:
 
 
 def _component_info(comp, priors: PriorSet) -> dict:
-    return {
+    info = {
         "name": comp.name,
         "kind": comp.kind,
         "description": comp.description,
         "formula": comp.formula,
         "parameters": [_parameter_info(p, priors) for p in comp.parameters],
     }
+    if getattr(comp, "exchangeable", ()):  # whether these priors order its groups
+        table = {p.name: priors.parameters.get(p.name, p.default_prior) for p in comp.parameters}
+        free = [n for n, p in table.items() if p is not None and not p.is_fixed]
+        info["label_ordering"] = label_ordering(comp, table, free).describe()
+    return info
 
 
 def describe_components(priors: PriorSet) -> dict:
@@ -106,6 +112,8 @@ def format_text(info: dict) -> str:
         for comp in info[key]:
             lines.append(f"  {comp['name']}: {comp['description']}")
             lines.append(f"    {comp['formula']}")
+            if comp.get("label_ordering"):
+                lines.append(f"    labels: {comp['label_ordering']}")
             lines += _parameter_lines(comp["parameters"])
         lines.append("")
     lines.append("Likelihood:")
