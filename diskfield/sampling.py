@@ -15,6 +15,9 @@ Design
   ring_radius's range), a log-uniform ``field_1au`` is sampled in ln field, and the broad
   plateau where the ring lies outside the data becomes a smooth tail. The chain,
   the log-posterior and every output stay in the user's parameters (θ; ln prior + ln L).
+  Under a label ordering (:mod:`diskfield.ordering`, e.g. the two rings) the one wall
+  left is the ordered region's boundary: walkers start inside it and proposals beyond it
+  get ``-inf``, so the draws are the ordered posterior, without label switching.
 * Walkers start in a small ball (1 % of prior mass per axis, in unit-cube coordinates)
   around the best of a multi-start maximum-likelihood search.
 * Moves: differential evolution (ter Braak 2006) with its default scale, the same with
