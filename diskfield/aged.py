@@ -1,8 +1,10 @@
 """Ages by quadrature for time-dependent envelopes (DESIGN §4).
 
-Each record's age is integrated on its own prior: nodes in the prior's CDF, split at the
-envelope's fast features (per walker). Bodies with the shared spin projection integrate it
-numerically against a truncated-normal proposal (importance mapping).
+Each record's age is integrated on its own prior by a composite Gauss-Legendre rule in time
+whose panels equidistribute how fast the integrand can change: steps of ln T of at most two
+record sds, steps of the prior's log density (its tails) and of time (per walker). Bodies
+with the shared spin projection integrate it numerically against a truncated-normal proposal
+(importance mapping).
 """
 from __future__ import annotations
 
@@ -67,57 +69,123 @@ def _age_priors(comp, priorset):
     return _AgePriors(kind=kind, a=a, b=bb, window={k: v for k, v in windows.items()})
 
 
-def _age_cdf_ppf(ages):
-    """cdf(t) and ppf(u) vectorised over padded records (broadcasting on leading axes)."""
-    def cdf(t):
-        out = np.where(ages.kind == 0, special.ndtr((t - ages.a) / ages.b),
-                       np.clip((t - ages.a) / (ages.b - ages.a), 0.0, 1.0))
-        for prior, mask in ages.window.values():
-            out = np.where(mask, prior.cdf(t), out)
-        return out
-
-    def ppf(u):
-        out = np.where(ages.kind[..., None] == 0,
-                       ages.a[..., None] + ages.b[..., None] * special.ndtri(u),
-                       ages.a[..., None] + (ages.b - ages.a)[..., None] * u)
-        for prior, mask in ages.window.values():
-            out = np.where(mask[..., None], prior.ppf(u), out)
-        return out
-
-    return cdf, ppf
+def _age_support(ages):
+    """Finite support [lo, hi] (G, n) [Myr] of each padded record's age prior (a normal prior
+    is cut at +-_NORMAL_CUT sd, beyond which its mass is < 1e-18)."""
+    lo = np.where(ages.kind == 0, ages.a - _NORMAL_CUT * ages.b, ages.a)
+    hi = np.where(ages.kind == 0, ages.a + _NORMAL_CUT * ages.b, ages.b)
+    for prior, mask in ages.window.values():
+        lo, hi = np.where(mask, prior.support[0], lo), np.where(mask, prior.support[1], hi)
+    return lo, hi
 
 
-def _age_rule(ages, envelope, p, s):
-    """Nodes in each record's age-prior CDF, split at the envelope's features (per walker)."""
-    cdf, ppf = _age_cdf_ppf(ages)
-    feats = _envelope_features(p)
+def _log_age_pdf(ages, t):
+    """ln p(t) of each padded record's age prior at t of shape (..., G, n, K) [1/Myr]."""
+    a, b = ages.a[..., None], ages.b[..., None]
+    z = (t - a) / b
+    out = np.where(ages.kind[..., None] == 0, -0.5 * z * z - np.log(b) - LN_SQRT_2PI,
+                   -np.log(b - a))
+    for prior, mask in ages.window.values():
+        out = np.where(mask[..., None], prior.log_prob(t), out)
+    return out
+
+
+#: Normal age priors are integrated over mean +- 9 sd (convention: the mass beyond, 2e-19, is
+#: far below the 0.01-nat budget even for a record 30 nats into its prior's tail).
+_NORMAL_CUT = 9.0
+#: The age panels equidistribute a measure of how fast the integrand can change: per panel at
+#: most ``_LEVEL_STEP`` record sds S of ln T (a record's density is a Gaussian of width S in
+#: ln T), ``_LOG_PDF_STEP`` nats of the prior density (its tails: e^-x over a panel is
+#: integrated to ~1e-6 by 6 Gauss nodes) and ``_WIDTH_STEP`` prior scales (sd, or the window's
+#: width / 4) of time. Conventions, checked against adaptive quadrature in tests/test_aged.py.
+_LEVEL_STEP = 2.0
+_LOG_PDF_STEP = 6.0
+_WIDTH_STEP = 2.0
+#: Most panels per record, and points of the uniform time grid on which the measure is summed.
+_MAX_PANELS = 64
+_GRID = 97
+
+
+def _age_rule(ages, envelope, p, s, var=None):
+    """Composite Gauss-Legendre rule in time on each record's age prior (per walker).
+
+    Parameters
+    ----------
+    ages : _AgePriors
+    envelope : Envelope
+    p : dict of ndarray (W,)
+    s : QuadratureSettings
+    var : ndarray, shape (W, G, n), optional
+        Each record's total log variance S^2 (None: the intrinsic scatter alone, a finer rule).
+
+    Notes
+    -----
+    Nodes are in time, not in the prior's CDF: a record whose data need an age far in its
+    prior's tail (a limit passed only late in a fast-decaying field) is integrated there too;
+    in the CDF such tails are crushed into the last 1e-13 of [0, 1].
+    """
     w = len(p["intrinsic_scatter"])
-    breaks = [np.zeros((w,) + ages.a.shape + (1,)), np.ones((w,) + ages.a.shape + (1,))]
-    if feats is not None:
-        breaks.append(np.clip(_cdf_points(cdf, feats), 0.0, 1.0))
-    u_breaks = np.sort(np.concatenate(breaks, axis=-1), axis=-1)
-    u, logw = quad.panel_rule(u_breaks, s.age_nodes)
-    u = np.clip(u, 1e-15, 1 - 1e-15)
-    t = _ppf_nodes(ppf, u)  # (W, G, n, Q)
-    lf = envelope.log_factor(t, _expand(p, 3))
+    shape = (w,) + ages.a.shape
+    if var is None:
+        var = np.broadcast_to((p["intrinsic_scatter"] ** 2)[:, None, None], shape)
+    lo, hi = _age_support(ages)
+    grid = _time_grid(lo, hi, _envelope_features(p), w)
+    pe = _expand(p, 3)
+    breaks = np.concatenate([
+        _measure_breaks(grid, envelope, pe, ages, np.sqrt(np.maximum(var, 1e-10)), lo, hi),
+        np.broadcast_to(np.stack([lo, hi, np.clip(0.0, lo, hi)], axis=-1), shape + (3,))],
+        axis=-1)
+    t, logw = quad.panel_rule(np.sort(breaks, axis=-1), s.age_nodes)
+    # zero-width panels (slots a record does not need) carry no weight: drop them
+    order = np.argsort(~np.isfinite(logw), axis=-1, kind="stable")
+    n_q = max(int(np.isfinite(logw).sum(axis=-1).max()), 1)
+    t = np.take_along_axis(t, order[..., :n_q], axis=-1)
+    logw = np.take_along_axis(logw, order[..., :n_q], axis=-1) + _log_age_pdf(ages, t)
+    logw = logw - quad.log_sum_exp(logw, axis=-1)[..., None]   # exactly normalised
+    lf = envelope.log_factor(t, pe)
     wts = np.exp(logw)
     mean = (wts * lf).sum(-1)
-    var = (wts * (lf - mean[..., None]) ** 2).sum(-1)
-    return _AgeRule(log_factor=lf, logw=logw, mean_log_factor=mean, var_log_factor=var)
+    var_lf = (wts * (lf - mean[..., None]) ** 2).sum(-1)
+    return _AgeRule(log_factor=lf, logw=logw, mean_log_factor=mean, var_log_factor=var_lf)
 
 
-def _cdf_points(cdf, feats):
-    """cdf of each record's age prior at each walker's feature times: (W, G, n, F)."""
-    t = feats[:, None, None, :]
-    return np.stack([cdf(t[..., k]) for k in range(feats.shape[1])], axis=-1)
+def _time_grid(lo, hi, feats, w):
+    """Sorted times (W, G, n, N): uniform on each support, plus the envelope's features."""
+    u = np.linspace(0.0, 1.0, _GRID)
+    grid = np.broadcast_to(lo[..., None] + (hi - lo)[..., None] * u, (w,) + lo.shape + (_GRID,))
+    if feats is None:
+        return grid
+    f = np.clip(feats[:, None, None, :], lo[..., None], hi[..., None])
+    return np.sort(np.concatenate([grid, f], axis=-1), axis=-1)
 
 
-def _ppf_nodes(ppf, u):
-    """ppf of each record's prior at u of shape (W, G, n, Q)."""
-    w = u.shape[0]
-    flat = np.moveaxis(u, 0, 2).reshape(u.shape[1], u.shape[2], -1)
-    t = ppf(flat).reshape(u.shape[1], u.shape[2], w, u.shape[3])
-    return np.moveaxis(t, 2, 0)
+def _measure_breaks(grid, envelope, pe, ages, sd, lo, hi):
+    """Times (W, G, n, _MAX_PANELS - 1) splitting each record's support into panels of equal
+    measure (see ``_LEVEL_STEP``), at most ``_MAX_PANELS``; unused slots are ``hi``.
+
+    The measure is summed on ``grid`` and inverted by linear interpolation (one
+    ``searchsorted`` over all rows, each row offset to keep the whole increasing).
+    """
+    lf = envelope.log_factor(grid, pe)
+    lp = _log_age_pdf(ages, grid)
+    scale = np.where(ages.kind == 0, ages.b, (hi - lo) / _WIDTH_STEP)[..., None]
+    cell = np.maximum(np.abs(np.diff(lf, axis=-1)) / (_LEVEL_STEP * sd[..., None]),
+                      np.abs(np.diff(lp, axis=-1)) / _LOG_PDF_STEP)
+    cell = np.maximum(cell, np.diff(grid, axis=-1) / (_WIDTH_STEP * scale))
+    cum = np.concatenate([np.zeros(cell.shape[:-1] + (1,)), np.cumsum(cell, axis=-1)], axis=-1)
+    total = cum[..., -1]
+    n_pan = np.clip(np.ceil(total), 1, _MAX_PANELS)
+    frac = cum / np.where(total > 0, total, 1.0)[..., None]
+    n = frac.shape[-1]
+    j = np.arange(1, _MAX_PANELS)
+    target = np.where(j < n_pan[..., None], j / n_pan[..., None], 1.0)   # (W, G, n, J)
+    rows = np.arange(frac[..., 0].size).reshape(frac.shape[:-1])[..., None]
+    k = np.searchsorted((frac + 2.0 * rows).ravel(), (target + 2.0 * rows).ravel())
+    k = np.clip(k.reshape(target.shape) - rows * n, 1, n - 1)
+    f0, f1 = np.take_along_axis(frac, k - 1, axis=-1), np.take_along_axis(frac, k, axis=-1)
+    g0, g1 = np.take_along_axis(grid, k - 1, axis=-1), np.take_along_axis(grid, k, axis=-1)
+    step = np.clip(np.where(f1 > f0, (target - f0) / np.where(f1 > f0, f1 - f0, 1.0), 0.0), 0, 1)
+    return np.where(target < 1.0, g0 + step * (g1 - g0), hi[..., None])
 
 
 def _envelope_features(p):
@@ -132,8 +200,70 @@ def _integrand_aged(phi, b, var, ages, spin, s):
     """Records with ages on their priors (time-dependent envelope), shape (W, G, K)."""
     if spin == "body":
         return _integrand_aged_body_spin(phi, b, var, ages, s)
-    rec = _aged_records(b, var, ages, _compact(b.det), _compact(b.lim))
-    return _aged_records_log_prob(phi, rec, spin)
+    # zero-width distance panels repeat one node: evaluate the distinct nodes, packed first
+    first = np.ones(phi.shape, bool)
+    first[..., 1:] = phi[..., 1:] != phi[..., :-1]
+    order = np.argsort(~first, axis=-1, kind="stable")[..., :max(int(first.sum(-1).max()), 1)]
+    packed = _records_flat(np.take_along_axis(phi, order, axis=-1), b, var, ages, spin)
+    out = np.empty(phi.shape)
+    np.put_along_axis(out, order, packed, axis=-1)
+    src = np.where(first, np.arange(phi.shape[-1]), 0)
+    np.maximum.accumulate(src, axis=-1, out=src)
+    return np.take_along_axis(out, src, axis=-1)
+
+
+def _records_flat(phi, b, var, ages, spin):
+    """Spin "none" or "record": sum over each body's records of ln sum_q w_q p(record |
+    ln B = phi + ln T(t_q)), shape (W, G, K).
+
+    Each record has its own number of age nodes (from a few to hundreds): the nodes of
+    positive weight of every (walker, record) are laid out flat, one row of K distance nodes
+    each, and summed per record by ``reduceat``, in chunks of whole records.
+    """
+    w, g, k = phi.shape
+    keep = np.isfinite(ages.logw) & (b.det | b.lim)[None, ..., None]
+    wi, gi, ri, _ = np.nonzero(keep)
+    lw, lf = ages.logw[keep], ages.log_factor[keep]
+    rec = (wi * g + gi) * b.z.shape[1] + ri
+    starts = np.flatnonzero(np.r_[True, rec[1:] != rec[:-1]])
+    ends = np.r_[starts[1:], len(rec)]
+    out = np.zeros(phi.shape)
+    per = max(1, _CHUNK_ELEMENTS // max(k, 1))
+    c0 = 0
+    while c0 < len(starts):
+        c1 = c0 + 1
+        while c1 < len(starts) and ends[c1] - starts[c0] <= per:
+            c1 += 1
+        sl = slice(starts[c0], ends[c1 - 1])
+        lp = _flat_chunk(phi, b, var, spin, wi[sl], gi[sl], ri[sl], lw[sl], lf[sl],
+                         starts[c0:c1] - starts[c0])
+        r0 = starts[c0:c1]
+        np.add.at(out, (wi[r0], gi[r0]), lp)
+        c0 = c1
+    return out
+
+
+def _flat_chunk(phi, b, var, spin, wi, gi, ri, lw, lf, starts):
+    """ln sum over age nodes for the records starting at ``starts`` of a flat chunk, (R, K)."""
+    vv = var[wi, gi, ri][:, None]
+    d = phi[wi, gi] + (lf - b.z[gi, ri])[:, None]                    # ln B - z, (N, K)
+    is_lim = b.lim[gi, ri][:, None]
+    if spin == "record":
+        term = np.where(is_lim, emg_logsf(d, vv), emg_logpdf(d, vv))
+    else:
+        # a detection's normalisation does not depend on the age node: added after the sum
+        term = np.where(is_lim, special.log_ndtr(d * (-1.0 / np.sqrt(vv))), d * d * (-0.5 / vv))
+    term += lw[:, None]
+    top = np.maximum.reduceat(term, starts, axis=0)
+    top = np.where(np.isfinite(top), top, 0.0)
+    term -= np.repeat(top, np.diff(np.r_[starts, len(term)]), axis=0)
+    np.exp(term, out=term)
+    with np.errstate(divide="ignore"):
+        lp = np.log(np.add.reduceat(term, starts, axis=0)) + top
+    if spin != "record":
+        v0 = vv[starts]
+        lp += np.where(is_lim[starts], 0.0, -0.5 * np.log(v0) - LN_SQRT_2PI)
+    return lp
 
 
 def _integrand_aged_body_spin(phi, b, var, ages, s):
@@ -167,12 +297,18 @@ def _integrand_aged_body_spin(phi, b, var, ages, s):
 #: temporaries of ~2 MB stay in the cache (convention, measured in benchmarks/bench_aged.py).
 _CHUNK_ELEMENTS = 1 << 18
 
+#: The spin proposal's variance is this multiple of the detections' (convention): with ages
+#: the integrand over X is a mixture whose tails, and a limit's step, can reach beyond a
+#: proposal of the detections' own width, where nodes in its CDF are too sparse (seen: 0.1
+#: nat with one limit, viscous envelope); four times the variance keeps f/q bounded.
+_SPIN_WIDTH = 4.0
+
 
 def _body_spin_points(ph, wi, g, b, var, ages, zbar, v, n_spin):
     """ln F at the points ``ph`` (P,) of body ``g``, walker of each point ``wi`` (P,)."""
     has = np.isfinite(v[wi])
     vq = np.where(has, v[wi], 1.0)
-    sd = np.sqrt(vq)[:, None]
+    sd = np.sqrt(_SPIN_WIDTH * vq)[:, None]
     mu_q = (ph - np.where(has, zbar[wi], 0.0) - vq)[:, None]
     u, w = quad.gauss_legendre_unit(n_spin)
     log_tail = special.log_ndtr(mu_q / sd)
@@ -185,11 +321,15 @@ def _body_spin_points(ph, wi, g, b, var, ages, zbar, v, n_spin):
     for rec in kinds:
         if rec is None:
             continue
-        size = n_spin * rec["lf"].shape[1] * rec["lf"].shape[2]
-        step = max(1, _CHUNK_ELEMENTS // size)
-        for c in range(0, len(ph), step):
-            sl = slice(c, c + step)
-            log_f[sl] += _records_sum(ph[sl, None] - x[sl], wi[sl], rec)
+        # walkers need from a few to hundreds of age nodes: points are taken in groups of
+        # equal need, each summing only its own nodes
+        need = rec["n_q"][wi]
+        for q in np.unique(need):
+            pts = np.flatnonzero(need == q)
+            step = max(1, _CHUNK_ELEMENTS // (n_spin * rec["lf"].shape[2] * int(q)))
+            for c in range(0, len(pts), step):
+                sl = pts[c:c + step]
+                log_f[sl] += _records_sum(ph[sl, None] - x[sl], wi[sl], rec, int(q))
     return quad.log_sum_exp(log_f, axis=-1)
 
 
@@ -201,25 +341,26 @@ def _body_records(b, var, ages, g, key):
         return None
     lw = ages.logw[:, g, idx]                                       # (W, M, Q)
     order = np.argsort(~np.isfinite(lw), axis=-1, kind="stable")
-    n_q = max(int(np.isfinite(lw).sum(axis=-1).max()), 1)
-    order = order[..., :n_q]
+    need = np.maximum(np.isfinite(lw).sum(axis=-1).max(axis=-1), 1)  # per walker (W,)
+    order = order[..., :need.max()]
     lf = np.take_along_axis(ages.log_factor[:, g, idx], order, axis=-1)
     lw = np.take_along_axis(lw, order, axis=-1)
     vv = var[:, g, idx]
-    return dict(det=key == "det", z=b.z[g, idx], var=vv,
+    return dict(det=key == "det", z=b.z[g, idx], var=vv, n_q=need,
                 lf=np.ascontiguousarray(np.moveaxis(lf, -1, 0)),
                 lw=np.ascontiguousarray(np.moveaxis(lw, -1, 0)))
 
 
-def _records_sum(m, wi, rec):
-    """sum over the records of ln p(record | ln B = m + ln T(t)) on the age rule, (P, Q_x).
+def _records_sum(m, wi, rec, n_q):
+    """sum over the records of ln p(record | ln B = m + ln T(t)) on the first ``n_q`` age
+    nodes (those of positive weight of walkers ``wi``), (P, Q_x).
 
     Age nodes lead the temporaries, so the sum over them is a reduction over the first axis
     (contiguous slabs) and every step is done in place.
     """
     vv = rec["var"][wi][:, None, :]                                 # (P, 1, M)
-    d = (m[..., None] - rec["z"])[None] + rec["lf"][:, wi, None, :]  # (Q, P, Q_x, M)
-    lw = rec["lw"][:, wi, None, :]
+    d = (m[..., None] - rec["z"])[None] + rec["lf"][:n_q, wi, None, :]  # (Q, P, Q_x, M)
+    lw = rec["lw"][:n_q, wi, None, :]
     if not rec["det"]:
         return _limits_sum(d, vv, lw)
     np.multiply(d, d, out=d)

@@ -366,6 +366,7 @@ class Model:
         if ages is not None:
             zbar, v, _ = _detection_stats(b.z - ages.mean_log_factor, var + ages.var_log_factor,
                                           b.det)
+            z = z - ages.mean_log_factor   # ln R level of each record at its mean ln T
         if self.spin == "record":
             zmax = np.nanmax(np.where(b.det, z, -np.inf), axis=-1)
             zbar = np.where(np.isfinite(zmax), zmax, zbar)
