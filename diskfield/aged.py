@@ -83,8 +83,9 @@ def _log_age_pdf(ages, t):
     """ln p(t) of each padded record's age prior at t of shape (..., G, n, K) [1/Myr]."""
     a, b = ages.a[..., None], ages.b[..., None]
     z = (t - a) / b
-    out = np.where(ages.kind[..., None] == 0, -0.5 * z * z - np.log(b) - LN_SQRT_2PI,
-                   -np.log(b - a))
+    normal = ages.kind[..., None] == 0
+    out = np.where(normal, -0.5 * z * z - np.log(b) - LN_SQRT_2PI,
+                   -np.log(np.where(normal, 1.0, b - a)))
     for prior, mask in ages.window.values():
         out = np.where(mask[..., None], prior.log_prob(t), out)
     return out
@@ -96,8 +97,9 @@ _NORMAL_CUT = 9.0
 #: The age panels equidistribute a measure of how fast the integrand can change: per panel at
 #: most ``_LEVEL_STEP`` record sds S of ln T (a record's density is a Gaussian of width S in
 #: ln T), ``_LOG_PDF_STEP`` nats of the prior density (its tails: e^-x over a panel is
-#: integrated to ~1e-6 by 6 Gauss nodes) and ``_WIDTH_STEP`` prior scales (sd, or the window's
-#: width / 4) of time. Conventions, checked against adaptive quadrature in tests/test_aged.py.
+#: integrated to ~1e-6 by 6 Gauss nodes) and ``_WIDTH_STEP`` sds of time for a normal prior
+#: (its core, where the log density is flat); a window is not split by time alone.
+#: Conventions, checked against adaptive quadrature in tests/test_aged.py.
 _LEVEL_STEP = 2.0
 _LOG_PDF_STEP = 6.0
 _WIDTH_STEP = 2.0
@@ -400,64 +402,3 @@ def _limits_sum(d, vv, lw):
             (slice(None),) + idx]
         lp[idx] = quad.log_sum_exp(lt, axis=0)
     return lp.sum(axis=-1)
-
-
-def _compact(mask):
-    """Column indices (G, M) of each row's True entries first, and their mask (G, M)."""
-    m = max(int(mask.sum(axis=1).max()), 1)
-    order = np.argsort(~mask, axis=1, kind="stable")[:, :m]
-    return order, np.take_along_axis(mask, order, axis=1)
-
-
-def _aged_records(b, var, ages, det_i, lim_i):
-    """Detections and limits compacted per body: z (1, G, M, 1), variances (W, G, M, 1), age
-    log factors and ln weights (W, G, M, Q), mask (G, M) and the rows (bodies) that have any."""
-    out = {}
-    for key, (order, mask) in (("det", det_i), ("lim", lim_i)):
-        pick = lambda a: np.take_along_axis(a, order[None, ..., None], axis=2)  # noqa: E731
-        out[key] = dict(z=np.take_along_axis(b.z, order, axis=1)[None, ..., None],
-                        var=np.take_along_axis(var, order[None], axis=-1)[..., None],
-                        lf=pick(ages.log_factor), lw=pick(ages.logw), mask=mask,
-                        rows=np.flatnonzero(mask.any(axis=1)))
-    return out
-
-
-def _aged_records_log_prob(m, rec, spin):
-    """Sum over each body's records of ln p(record | ln B = m + ln T(t)) on the age rule.
-
-    Parameters
-    ----------
-    m : ndarray, shape (W, G) + E
-        ln B before the envelope factor (E: any extra node axes).
-    rec : dict
-        From :func:`_aged_records`.
-    spin : {"none", "record"}
-        ``"record"``: each record's own spin offset marginalised in closed form (EMG).
-
-    Returns
-    -------
-    ndarray, shape (W, G) + E
-    """
-    out = np.zeros(m.shape)
-    extra = m.ndim - 2
-    for key in ("det", "lim"):
-        r = rec[key]
-        rows = r["rows"]
-        if not len(rows):
-            continue
-        grow = lambda a: np.expand_dims(a[:, rows], tuple(range(2, 2 + extra)))  # noqa: E731
-        z, vv, lf, lw = grow(r["z"]), grow(r["var"]), grow(r["lf"]), grow(r["lw"])
-        d = m[:, rows][..., None, None] + lf - z      # ln B - z at (W, Gr, E, M, Q)
-        const = 0.0
-        if spin == "record":
-            term = emg_logpdf(d, vv) if key == "det" else emg_logsf(d, vv)
-        elif key == "det":
-            # the normalisation does not depend on the age node: added after the sum
-            term = d * d * (-0.5 / vv)
-            const = -0.5 * np.log(vv[..., 0]) - LN_SQRT_2PI
-        else:
-            term = special.log_ndtr(d * (-1.0 / np.sqrt(vv)))
-        lp = quad.log_sum_exp(lw + term, axis=-1) + const
-        mask = np.expand_dims(r["mask"][rows], tuple(range(1, 1 + extra)))
-        out[:, rows] += np.where(mask, lp, 0.0).sum(-1)
-    return out
