@@ -11,10 +11,16 @@ per node. A body with upper limits and the shared spin needs the spin integral n
 with Y = ln B - X the recorded log field, F(phi) = e^-phi C(phi), C(phi) = int_-inf^phi e^Y h(Y)
 dY, and h(Y) (detections' Gaussian product times the limits' normal CDFs) does not depend on the
 distance. C is tabulated once per (walker, body) on Gauss–Legendre panels graded around the
-detections' peak and every limit; each panel's interpolating polynomial is integrated in
-closed form, stored as monomial coefficients, and read at a node by Horner's rule.
+detections' peak and every limit, from 20 widths below the lowest of them (where ln C has a
+closed form) to 20 above the highest. A read inside a panel integrates exp of the polynomial
+that interpolates q(Y) = ln[e^Y h(Y)] at the panel's nodes: q is smooth (a parabola plus
+normal log-CDFs) where e^q spans many e-folds, so the read keeps its relative accuracy at the
+steep foot of a panel, where interpolating e^q itself loses it (measured: tens of nats for a
+body whose limit sits below its detections).
 """
 from __future__ import annotations
+
+from functools import lru_cache
 
 import numpy as np
 from scipy import special
@@ -102,7 +108,9 @@ def body_spin_with_limits(phi, wi, gi, gx, b, var, stats, n_nodes):
         F ~ prod Phi (limits only) or the closed-form EMG times prod Phi.
     """
     z, vl, lim, zbar, v, ln_k = _subset(b, var, stats, gx)
-    breaks, y_a, has_det = _y_breaks(z, vl, lim, zbar, v)
+    has_det = np.isfinite(v)
+    args = (z, vl, lim, zbar, v, ln_k, has_det)
+    breaks, y_a = _y_breaks(z, vl, lim, zbar, v, has_det)
     w, g, nb = breaks.shape
     pos = np.zeros(b.lim.shape[0], int)
     pos[gx] = np.arange(len(gx))
@@ -112,17 +120,15 @@ def body_spin_with_limits(phi, wi, gi, gx, b, var, stats, n_nodes):
     yw, yg, _ = np.nonzero(keep)
     lf = np.full(y.shape, -np.inf)
     yk = y[keep]
-    lf[keep] = yk + _log_h(yk, yw, yg, z, vl, lim, zbar, v, ln_k, has_det)
-    tail0 = np.where(has_det, -np.inf,
-                     y_a + _log_h(y_a.ravel(), *np.indices((w, g)).reshape(2, -1), z, vl, lim,
-                                  zbar, v, ln_k, has_det).reshape(w, g))
+    lf[keep] = yk + _log_h(yk, yw, yg, *args)
+    rw, rg = np.indices((w, g)).reshape(2, -1)
+    tail0 = y_a + _log_h(y_a.ravel(), rw, rg, *args, tail=True).reshape(w, g)
     table = _cumulative_table(breaks.reshape(w * g, nb), lf.reshape(w * g, -1),
                               tail0.ravel(), n_nodes)
     out, below = _read_table(table, phi, row)
     if np.any(below):
         gw, gg = wi[below], pos[gi[below]]
-        out[below] = _log_h(phi[below], gw, gg, z, vl, lim, zbar, v, ln_k, has_det,
-                            tail=True)
+        out[below] = _log_h(phi[below], gw, gg, *args, tail=True)
     return out
 
 
@@ -158,9 +164,13 @@ def _subset(b, var, stats, gx):
     return zl, vl, np.take_along_axis(lim, order, axis=-1), zbar, v, ln_k
 
 
-def _y_breaks(z, var, lim, zbar, v):
-    """Sorted Y breakpoints (W, G, B), the range start Y_a (W, G) and the detection mask."""
-    has_det = np.isfinite(v)
+def _y_breaks(z, var, lim, zbar, v, has_det):
+    """Sorted Y breakpoints (W, G, B) and the range start Y_a (W, G).
+
+    Graded around the detections' peak, each limit and the mode of e^Y h(Y); the range
+    starts 20 widths below the lowest of them (the limits' normal CDFs are 1 to e^-200 there,
+    so ln C(Y_a) has a closed form) and ends 20 widths above the highest.
+    """
     sv = np.sqrt(np.where(has_det, v, 1.0))
     peak = zbar + np.where(has_det, v, 0.0)       # e^Y N(Y; zbar, V) peaks at zbar + V
     sd = np.sqrt(var)
@@ -168,15 +178,15 @@ def _y_breaks(z, var, lim, zbar, v):
     lim_pts = zl[..., None] + sd[..., None] * _Y_GRADES
     lo_lim = np.min(np.where(lim, zl - 20.0 * sd, np.inf), axis=-1)
     hi_lim = np.max(np.where(lim, zl + 20.0 * sd, -np.inf), axis=-1)
-    y_a = np.where(has_det, peak - 20.0 * sv, lo_lim)
-    y_b = np.where(has_det, peak + 20.0 * sv, hi_lim)
+    y_a = np.minimum(np.where(has_det, peak - 20.0 * sv, np.inf), lo_lim)
+    y_b = np.maximum(np.where(has_det, peak + 20.0 * sv, -np.inf), hi_lim)
     det_pts = np.where(has_det[..., None], peak[..., None] + sv[..., None] * _Y_GRADES,
                        y_a[..., None])
     lim_pts = np.where(lim[..., None], lim_pts, y_a[..., None, None])
     pts = np.concatenate([det_pts, lim_pts.reshape(sd.shape[:2] + (-1,)),
                           y_a[..., None], y_b[..., None]], axis=-1)
     pts = np.clip(pts, y_a[..., None], y_b[..., None])
-    return np.sort(pts, axis=-1), y_a, has_det
+    return np.sort(pts, axis=-1), y_a
 
 
 def _log_h(y, wi, gi, z, var, lim, zbar, v, ln_k, has_det, tail=False):
@@ -197,29 +207,99 @@ def _log_h(y, wi, gi, z, var, lim, zbar, v, ln_k, has_det, tail=False):
 
 
 def _cumulative_table(breaks, lf, tail0, n_nodes):
-    """Per-panel data for reading ln C anywhere: rows (R,) of breaks (R, B) and ln[e^Y h(Y)] at
-    the panels' Gauss–Legendre nodes (R, (B - 1) n), with ln C at the first break ``tail0``.
+    """Per-panel data for reading ln C anywhere.
 
-    Returns a dict: ``key`` (flat search keys), ``lo``, ``span`` (R,), ``a``, ``h``, ``top``,
-    ``log_c`` (ln C at each panel start) of shape (R, B - 1), ``coef`` (R, B - 1, n) with
-    int_a^(a + t h) e^Y h(Y) dY ~ h e^top t (c_0 + t (c_1 + ...)), ``log_end`` (R,).
+    Parameters
+    ----------
+    breaks : ndarray, shape (R, B)
+    lf : ndarray, shape (R, (B - 1) n)
+        q(Y) = ln[e^Y h(Y)] at the panels' Gauss–Legendre nodes (``-inf``: panel skipped).
+    tail0 : ndarray, shape (R,)
+        ln C at the first break.
+
+    Returns
+    -------
+    dict
+        ``key`` (flat search keys), ``lo``, ``span`` (R,); ``a``, ``h``, ``log_c`` (ln C at
+        each panel start), ``range`` (spread of q over the panel's nodes) of shape (R, B - 1);
+        ``q`` (R, B - 1, n) the node values; ``log_end`` (R,).
+
+    Notes
+    -----
+    A panel's integral is taken over the polynomial interpolating q (not e^q) at its nodes:
+    q is smooth where e^q spans many e-folds, so exp of the interpolant stays accurate, and
+    the panel is cut into as many equal sub-panels as keep each within ``_SUB_RANGE`` nats.
     """
     r, nb = breaks.shape
-    lf_p = lf.reshape(r, nb - 1, n_nodes)
-    top = np.max(lf_p, axis=-1)
-    top = np.where(np.isfinite(top), top, 0.0)
-    e = np.exp(lf_p - top[..., None])
+    q = lf.reshape(r, nb - 1, n_nodes)
+    top = np.max(q, axis=-1)
+    low = np.min(q, axis=-1)
+    with np.errstate(invalid="ignore"):
+        spread = np.where(np.isfinite(top), top - low, 0.0)
     a, h = breaks[:, :-1], np.diff(breaks, axis=-1)
     _, wts = quad.gauss_legendre_unit(n_nodes)
+    top0 = np.where(np.isfinite(top), top, 0.0)
     with np.errstate(divide="ignore"):
-        panel = np.log(h * (e @ wts)) + top
+        panel = np.log(h * (np.exp(q - top0[..., None]) @ wts)) + top0
+    # the Gauss rule on e^q is good to ~1e-5 up to a 5-nat spread; steeper panels integrate
+    # exp of q's interpolant on sub-panels
+    pr, pp = np.nonzero(np.isfinite(top) & (h > 0) & (spread > 5.0))
+    panel[pr, pp] = _log_partial(q[pr, pp], np.ones(len(pr)), h[pr, pp], spread[pr, pp])
     log_c = np.logaddexp.accumulate(np.concatenate([tail0[:, None], panel], axis=-1), axis=-1)
     lo, span = breaks[:, 0], breaks[:, -1] - breaks[:, 0]
     span = np.where(span > 0, span, 1.0)
     key = ((breaks - lo[:, None]) / span[:, None] + 3.0 * np.arange(r)[:, None]).ravel()
-    return dict(key=key, lo=lo, span=span, a=a, h=h, top=top, log_c=log_c[:, :-1],
-                log_end=log_c[:, -1], coef=e @ quad.antiderivative_coefficients(n_nodes).T,
-                nb=nb)
+    return dict(key=key, lo=lo, span=span, a=a, h=h, q=q, range=spread,
+                log_c=log_c[:, :-1], log_end=log_c[:, -1], nb=nb)
+
+
+#: Largest spread of q [nats] over one sub-panel of the 8-node Gauss–Legendre rule that
+#: integrates exp of q's interpolant (relative error ~1e-7 for a pure exponential of that
+#: spread; numerical convention).
+_SUB_RANGE = 8.0
+_SUB_NODES = 8
+_MAX_TIER = 6          # up to 2**5 = 32 sub-panels
+
+
+def _log_partial(qv, t, h, spread):
+    """ln int_0^t h exp(q~(s)) ds for panels' node values ``qv`` (M, n) (q~ their
+    interpolating polynomial on [0, 1]), upper limits ``t`` (M,) in [0, 1], widths ``h``.
+
+    Reads are grouped by the number of equal sub-panels their spread over [0, t] needs
+    (powers of two up to 32) so that each group is one rectangular computation;
+    q~ is read by Horner's rule on monomial coefficients (degree n - 1 on [0, 1]: well
+    conditioned for the few nodes used here).
+    """
+    out = np.empty(len(t))
+    coef = qv @ _monomial_matrix(qv.shape[1]).T                    # (M, n), c_k of s^k
+    need = spread * t
+    # tiers: (sub-panels, nodes each); 4 nodes integrate exp of a 3-nat spread to ~1e-5
+    tier = np.where(need <= 3.0, 0, np.minimum(
+        1 + np.ceil(np.log2(np.maximum(need, 1.0) / _SUB_RANGE)).clip(0), _MAX_TIER))
+    for k in np.unique(tier):
+        sel = np.flatnonzero(tier == k) if k != tier[0] or np.any(tier != k) else slice(None)
+        m, nodes = (1, 4) if k == 0 else (2 ** (int(k) - 1), _SUB_NODES)
+        xs, ws = quad.gauss_legendre_unit(nodes)
+        s = ((np.arange(m)[:, None] + xs) / m).ravel()             # (m k,) in [0, 1]
+        tau = t[sel, None] * s                                      # (S, m k)
+        c = coef[sel]
+        acc = c[:, -1:] * tau + c[:, -2:-1]
+        for j in range(c.shape[1] - 3, -1, -1):
+            acc = acc * tau + c[:, j:j + 1]
+        lw = np.log(np.tile(ws, m) / m)
+        with np.errstate(divide="ignore"):
+            out[sel] = quad.log_sum_exp(acc + lw, axis=-1) + np.log(t[sel] * h[sel])
+    return out
+
+
+@lru_cache(maxsize=8)
+def _monomial_matrix(n):
+    """A with c = A @ f the monomial coefficients of the polynomial interpolating f at the n
+    Gauss–Legendre nodes of [0, 1] (read-only)."""
+    x, _ = quad.gauss_legendre_unit(n)
+    out = np.linalg.inv(np.vander(x, n, increasing=True))
+    out.setflags(write=False)
+    return out
 
 
 def _read_table(table, phi, row):
@@ -229,15 +309,16 @@ def _read_table(table, phi, row):
     # one search over all rows: row k's keys lie in [3k, 3k + 1], its queries in [3k - 1, 3k + 2]
     q = np.clip((phi - table["lo"][row]) / table["span"][row], -1.0, 2.0) + 3.0 * row
     idx = np.searchsorted(table["key"], q, side="right") - 1 - row * nb
-    p = np.clip(idx, 0, nb - 2)
-    a, h = table["a"][row, p], table["h"][row, p]
-    t = np.clip((phi - a) / np.where(h > 0, h, 1.0), 0.0, 1.0)
-    coef = table["coef"][row, p]
-    acc = coef[:, -1]
-    for k in range(coef.shape[1] - 2, -1, -1):
-        acc = acc * t + coef[:, k]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        part = np.log(np.maximum(acc * t * h, 0.0)) + table["top"][row, p]
-    out = np.logaddexp(table["log_c"][row, p], part) - phi
-    out = np.where(idx >= nb - 1, table["log_end"][row] - phi, out)
+    above = idx >= nb - 1
+    out = table["log_end"][row] - phi
+    inside = np.flatnonzero((idx >= 0) & ~above)
+    if len(inside):
+        ri, p = row[inside], idx[inside]
+        a, h = table["a"][ri, p], table["h"][ri, p]
+        t = np.clip((phi[inside] - a) / np.where(h > 0, h, 1.0), 0.0, 1.0)
+        part = np.full(len(inside), -np.inf)
+        live = (t > 0) & np.isfinite(table["q"][ri, p, 0])
+        part[live] = _log_partial(table["q"][ri, p][live], t[live], h[live],
+                                  table["range"][ri, p][live])
+        out[inside] = np.logaddexp(table["log_c"][ri, p], part) - phi[inside]
     return out, idx < 0
