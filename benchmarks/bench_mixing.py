@@ -81,6 +81,7 @@ def diagnose(comp, profile, seed, settings, blocks):
         print("   flag:", f)
     if model.config.get("label_ordering"):
         print("   label ordering:", model.config["label_ordering"])
+        print("   walkers under the ordering:", settings.ordered_region)
     full, post, half = _tau(chain), _tau(chain[run.burn_in:]), _tau(chain[S // 2:])
     print(f"   {'parameter':18s} {'tau(all)':>9s} {'tau(post-burn)':>14s} {'tau(2nd half)':>13s}"
           f" {'driver tau':>10s}")
@@ -118,6 +119,8 @@ def main(argv=None):
     ap.add_argument("--blocks", type=int, default=6)
     ap.add_argument("--ball", type=float, default=None)
     ap.add_argument("--moves", choices=sorted(MOVES), default="driver")
+    ap.add_argument("--ordered-region", choices=("fold", "wall"), default=None,
+                    help="walkers under a label ordering (default: the driver's, fold)")
     args = ap.parse_args(argv)
     kw = {}
     if args.max_steps:
@@ -126,6 +129,8 @@ def main(argv=None):
         kw["n_walkers"] = args.walkers
     if args.ball:
         kw["ball"] = args.ball
+    if args.ordered_region:
+        kw["ordered_region"] = args.ordered_region
     if MOVES[args.moves] is not None:
         sampling._moves = MOVES[args.moves]
         print(f"moves overridden (NOT the driver's): {args.moves}")

@@ -19,8 +19,10 @@ the prior follows it:
   applies the inverse CDFs: a k!-to-1 fold of the cube whose image density is exactly
   k! × the product prior on the ordered region (identical priors share one increasing ppf,
   so the order in u is the order in θ);
-* the emcee walkers (z = logit(u)) start in, and are confined to, the ordered region; the
-  optimiser's optimum is mapped into it;
+* the emcee walkers (z = logit(u)) start in the ordered region and record θ =
+  ``prior_transform(u)``: with a symmetric likelihood the density in z is symmetric, and
+  the recorded θ follow the ordered posterior exactly (``SamplerSettings.ordered_region``;
+  ``"wall"`` confines the walkers instead); the optimiser's optimum is mapped into it;
 * Savage–Dickey tests on a grouped parameter pool its k exchangeable copies
   (:meth:`Ordering.copies`): that is the marginal of the symmetric, unordered posterior.
 

@@ -15,9 +15,12 @@ Design
   ring_radius's range), a log-uniform ``field_1au`` is sampled in ln field, and the broad
   plateau where the ring lies outside the data becomes a smooth tail. The chain,
   the log-posterior and every output stay in the user's parameters (θ; ln prior + ln L).
-  Under a label ordering (:mod:`diskfield.ordering`, e.g. the two rings) the one wall
-  left is the ordered region's boundary: walkers start inside it and proposals beyond it
-  get ``-inf``, so the draws are the ordered posterior, without label switching.
+  Under a label ordering (:mod:`diskfield.ordering`, e.g. the two rings) the walkers
+  start in the ordered region and move over the whole cube; the recorded θ is the fold
+  of their position onto the ordered region (``prior_transform``), so the draws are the
+  ordered posterior without label switching and without a wall at the region's edge
+  (a wall, ``SamplerSettings.ordered_region = "wall"``, doubled the inner ring radius's
+  τ on the demo).
 * Walkers start in a small ball (1 % of prior mass per axis, in unit-cube coordinates)
   around the best of a multi-start maximum-likelihood search.
 * Moves: differential evolution (ter Braak 2006) with its default scale, the same with
@@ -90,6 +93,14 @@ class SamplerSettings:
         Local searches of the multi-start optimiser.
     progress : bool
         Show a tqdm progress bar.
+    ordered_region : {"fold", "wall"}
+        Under a label ordering (:mod:`diskfield.ordering`): ``"fold"`` (default) lets the
+        walkers move over the whole unit cube and records θ = ``prior_transform(u)``, the
+        fold of their position onto the ordered region (the target in z is symmetric, so
+        the recorded θ follow the ordered posterior exactly); ``"wall"`` confines them to
+        the ordered region (``-inf`` outside). Both give ordered draws; on the demo's
+        two-ring fit the fold had the shorter τ (benchmarks/bench_mixing.py
+        ``--ordered-region``).
     """
 
     n_walkers: int = 32
@@ -102,6 +113,7 @@ class SamplerSettings:
     ball: float = 0.01
     n_starts: int = 3
     progress: bool = False
+    ordered_region: str = "fold"
 
     def walkers_for(self, n_params: int) -> int:
         """Ensemble size for ``n_params`` parameters (even, ≥ 2 P + 2)."""
@@ -213,14 +225,19 @@ class _unit_log_probability:
     """Vectorised log-density in ``z = logit(u)`` with per-body log-likelihoods as blobs.
 
     Column 0 is ln L(θ) + Σ [ln u + ln(1 − u)] with θ = ``prior_transform(expit(z))``
-    (``-inf`` where θ has zero prior density or ln L is not finite, and outside the ordered
-    region of a label ordering: the walkers sample the ordered prior's copy of the
-    posterior, :mod:`diskfield.ordering`); columns 1.. are the per-body ln L. A plain
-    class so that it pickles.
+    (``-inf`` where θ has zero prior density or ln L is not finite); columns 1.. are the
+    per-body ln L. A plain class so that it pickles.
+
+    Under a label ordering (:mod:`diskfield.ordering`) ``prior_transform`` folds u onto the
+    ordered region, and L is symmetric, so the density in z is the symmetric posterior over
+    the whole cube and θ follows the ordered posterior (``wall=False``); with ``wall=True``
+    points outside the ordered region get ``-inf`` instead (the walkers sample the ordered
+    copy only).
     """
 
-    def __init__(self, model):
+    def __init__(self, model, wall: bool = False):
         self.model = model
+        self.wall = wall
 
     def theta(self, z):
         """Parameters of unconstrained points ``z`` (..., P)."""
@@ -234,7 +251,7 @@ class _unit_log_probability:
         log_jac = -(np.logaddexp(0.0, z) + np.logaddexp(0.0, -z)).sum(axis=1)
         theta = self.theta(z)
         ok = np.isfinite(log_jac) & np.isfinite(np.asarray(self.model.log_prior(theta), float))
-        ordering = _ordering(self.model)
+        ordering = _ordering(self.model) if self.wall else None
         if ordering is not None:
             ok &= ordering.in_order(z)  # logit is increasing: order in z = order in u
         pointwise = np.full((z.shape[0], n_bodies), -np.inf)
@@ -350,7 +367,9 @@ def run_sampler(model, *, seed: int, settings: SamplerSettings = SamplerSettings
     names = tuple(model.parameter_names)
     n_walkers = settings.walkers_for(len(names))
     fp = _fingerprint(fingerprint, seed, names, n_walkers)
-    logp = _unit_log_probability(model)
+    if _ordering(model) is not None:  # a chain walled in the ordered region or not
+        fp["ordered_region"] = settings.ordered_region
+    logp = _unit_log_probability(model, wall=settings.ordered_region == "wall")
     loop = (_resume_loop(checkpoint, fp) if resume
             else _fresh_loop(model, settings, seed, logp, n_walkers))
     sampler = emcee.EnsembleSampler(n_walkers, len(names), logp, vectorize=True, moves=_moves())
@@ -551,5 +570,7 @@ def _compare_fingerprint(path, got, expect):
 
 
 def _validate_settings(settings: SamplerSettings):
+    if settings.ordered_region not in ("fold", "wall"):
+        raise OptionError("ordered_region", settings.ordered_region, "'fold' or 'wall'")
     if settings.max_steps < 1:
         raise OptionError("--max-steps", settings.max_steps, "a positive integer")
