@@ -96,13 +96,15 @@ def _log_age_pdf(ages, t):
 _NORMAL_CUT = 9.0
 #: The age panels equidistribute a measure of how fast the integrand can change: per panel at
 #: most ``_LEVEL_STEP`` record sds S of ln T (a record's density is a Gaussian of width S in
-#: ln T), ``_LOG_PDF_STEP`` nats of the prior density (its tails: e^-x over a panel is
-#: integrated to ~1e-6 by 6 Gauss nodes) and ``_WIDTH_STEP`` sds of time for a normal prior
-#: (its core, where the log density is flat); a window is not split by time alone.
-#: Conventions, checked against adaptive quadrature in tests/test_aged.py.
-_LEVEL_STEP = 2.0
-_LOG_PDF_STEP = 6.0
-_WIDTH_STEP = 2.0
+#: ln T), ``_LOG_PDF_STEP`` nats of the prior density (its tails: 6 Gauss nodes integrate
+#: e^-10x on [0, 1] to ~2e-4, derived from the Gauss error term) and ``_WIDTH_STEP`` sds of
+#: time for a normal prior (its core, where the log density is flat); a window is not split
+#: by time alone. Conventions: with steps of 2, 6 and 2 the worst error at the tests' points
+#: was 1.4e-3 nat, with 3, 10 and 3 1.6e-3 nat at two thirds of the nodes
+#: (tests/test_aged.py, benchmarks/bench_aged.py).
+_LEVEL_STEP = 3.0
+_LOG_PDF_STEP = 10.0
+_WIDTH_STEP = 3.0
 #: Most panels per record, and points of the uniform time grid on which the measure is summed.
 _MAX_PANELS = 64
 _GRID = 97
@@ -288,7 +290,7 @@ def _integrand_aged_body_spin(phi, b, var, ages, s):
     for g in range(phi.shape[1]):
         wi, ki = np.nonzero(first[:, g])
         out[wi, g, ki] = _body_spin_points(phi[wi, g, ki], wi, g, b, var, ages,
-                                           zbar[:, g], v[:, g], s.spin_nodes)
+                                           zbar[:, g], v[:, g], s)
     # copy each distinct node's value onto its repeats (runs of equal phi along K)
     src = np.where(first, np.arange(phi.shape[-1]), 0)
     np.maximum.accumulate(src, axis=-1, out=src)
@@ -299,26 +301,86 @@ def _integrand_aged_body_spin(phi, b, var, ages, s):
 #: temporaries of ~2 MB stay in the cache (convention, measured in benchmarks/bench_aged.py).
 _CHUNK_ELEMENTS = 1 << 18
 
-#: The spin proposal's variance is this multiple of the detections' (convention): with ages
-#: the integrand over X is a mixture whose tails, and a limit's step, can reach beyond a
-#: proposal of the detections' own width, where nodes in its CDF are too sparse (seen: 0.1
-#: nat with one limit, viscous envelope); four times the variance keeps f/q bounded.
+#: The spin proposal's variance is this multiple of the Laplace variance at the integrand's
+#: mode (convention): with ages the integrand over X is a mixture whose tails can reach beyond
+#: a proposal of its own curvature, where nodes in the proposal's CDF are too sparse (seen:
+#: 0.1 nat with one limit, viscous envelope); four times the variance keeps f/q bounded.
 _SPIN_WIDTH = 4.0
 
 
-def _body_spin_points(ph, wi, g, b, var, ages, zbar, v, n_spin):
+#: Breakpoints of the spin rule around each limit's step, in units of its width (convention).
+_STEP_GRADES = np.array([-3.0, -1.0, 0.0, 1.0, 3.0])
+
+
+def _spin_rule(ph, wi, g, b, var, ages, has, mu_q, sd, log_tail, s):
+    """ln s_k (P, Q_x) of the spin nodes in s = P_q(X' > X), and their ln weights.
+
+    Bodies with detections: ``spin_nodes`` Gauss nodes on [0, 1] (the proposal sits at the
+    integrand's mode, :func:`_spin_mode`). Limits alone: the proposal is X ~ Exp(1) and the
+    integrand e^-X prod Phi((X - X*) / w) has its mass just past the steps X* = phi + E[ln T]
+    - z (width w = sqrt(S^2 + Var ln T)), often deep in the proposal's tail; panels of
+    ``spin_panel_nodes`` nodes then split [0, 1] at s(X* + k w), k in ``_STEP_GRADES``, for
+    each limit. Working in s (not 1 - s) keeps steps deep in the tail resolved.
+    """
+    lim = np.flatnonzero(b.lim[g])
+    if not len(lim) or has.all():
+        u, w = quad.gauss_legendre_unit(s.spin_nodes)
+        shape = (len(ph), len(u))
+        return np.broadcast_to(np.log1p(-u), shape), np.broadcast_to(np.log(w), shape)
+    step = ph[:, None] + ages.mean_log_factor[wi][:, g, lim] - b.z[g, lim]        # (P, L)
+    width = np.sqrt(var[wi][:, g, lim] + ages.var_log_factor[wi][:, g, lim])
+    pts = (step[..., None] + width[..., None] * _STEP_GRADES).reshape(len(ph), -1)
+    log_s = np.where(has[:, None], special.log_ndtr((mu_q - pts) / sd) - log_tail, -pts)
+    ends = np.broadcast_to(np.array([0.0, 1.0]), (len(ph), 2))
+    breaks = np.sort(np.concatenate([ends, np.exp(np.minimum(log_s, 0.0))], axis=1), axis=1)
+    nodes, logw = quad.panel_rule(breaks, s.spin_panel_nodes)
+    with np.errstate(divide="ignore"):
+        return np.log(nodes), logw
+
+
+def _spin_mode(ph, wi, g, b, var, ages, zbar, v):
+    """Mode and curvature of ln f(X) with each record's ln T at its mean (Var ln T added to
+    its variance), (P,) each: Newton steps from the detections' mode phi - zbar - v.
+
+    ln f = -X - (phi - X - zbar)^2 / 2v + sum_limits ln Phi((X - X*) / w) is concave, so the
+    steps converge; without limits the start is the mode. A limit in conflict with the
+    detections moves the mode between them, where neither alone would put the nodes.
+    """
+    mode = ph - zbar[wi] - v[wi]
+    curv = 1.0 / v[wi]
+    lim = np.flatnonzero(b.lim[g])
+    if not len(lim):
+        return mode, curv
+    step = ph[:, None] + ages.mean_log_factor[wi][:, g, lim] - b.z[g, lim]        # (P, L)
+    width = np.sqrt(var[wi][:, g, lim] + ages.var_log_factor[wi][:, g, lim])
+    for _ in range(_MODE_STEPS):
+        y = (mode[:, None] - step) / width
+        mills = np.exp(-0.5 * y * y - LN_SQRT_2PI - special.log_ndtr(y))  # phi(y) / Phi(y)
+        grad = -1.0 + (ph - mode - zbar[wi]) / v[wi] + (mills / width).sum(-1)
+        curv = 1.0 / v[wi] + (mills * (y + mills) / width ** 2).sum(-1)
+        mode = mode + np.clip(grad / curv, -3.0 * np.sqrt(v[wi]), 3.0 * np.sqrt(v[wi]))
+    return mode, curv
+
+
+#: Newton steps of :func:`_spin_mode` (convention: each moves at most 3 sds of the detections).
+_MODE_STEPS = 6
+
+
+def _body_spin_points(ph, wi, g, b, var, ages, zbar, v, s):
     """ln F at the points ``ph`` (P,) of body ``g``, walker of each point ``wi`` (P,)."""
     has = np.isfinite(v[wi])
-    vq = np.where(has, v[wi], 1.0)
-    sd = np.sqrt(_SPIN_WIDTH * vq)[:, None]
-    mu_q = (ph - np.where(has, zbar[wi], 0.0) - vq)[:, None]
-    u, w = quad.gauss_legendre_unit(n_spin)
+    mode, curv = _spin_mode(ph, wi, g, b, var, ages, np.where(np.isfinite(v), zbar, 0.0),
+                            np.where(np.isfinite(v), v, 1.0))
+    sd = np.sqrt(_SPIN_WIDTH / np.where(has, curv, 1.0))[:, None]
+    mu_q = np.where(has, mode, 0.0)[:, None]
     log_tail = special.log_ndtr(mu_q / sd)
-    x = np.where(has[:, None], mu_q - sd * special.ndtri_exp(log_tail + np.log1p(-u)),
-                 -np.log1p(-u))                                      # (P, Q_x)
+    log_s, logw = _spin_rule(ph, wi, g, b, var, ages, has, mu_q, sd, log_tail, s)
+    x = np.where(has[:, None], mu_q - sd * special.ndtri_exp(log_tail + log_s),
+                 -log_s)                                             # (P, Q_x)
     log_q = np.where(has[:, None], -0.5 * ((x - mu_q) / sd) ** 2 - np.log(sd) - LN_SQRT_2PI
                      - log_tail, -x)
-    log_f = -x - log_q + np.log(w)
+    log_f = -x - log_q + logw
+    n_spin = x.shape[1]
     kinds = [_body_records(b, var, ages, g, key) for key in ("det", "lim")]
     for rec in kinds:
         if rec is None:
@@ -365,16 +427,21 @@ def _records_sum(m, wi, rec, n_q):
     lw = rec["lw"][:n_q, wi, None, :]
     if not rec["det"]:
         return _limits_sum(d, vv, lw)
+    # summed in linear space (no max pass); the sums below _LINEAR_FLOOR again in logs
     np.multiply(d, d, out=d)
     d *= -0.5 / vv
-    d += lw
-    top = d.max(axis=0)
-    top = np.where(np.isfinite(top), top, 0.0)
-    d -= top
     np.exp(d, out=d)
+    d *= np.exp(lw)
+    tot = d.sum(axis=0)
     with np.errstate(divide="ignore"):
-        lp = np.log(d.sum(axis=0)) + top - 0.5 * np.log(vv) - LN_SQRT_2PI
-    return lp.sum(axis=-1)
+        lp = np.log(tot)
+    low = tot < _LINEAR_FLOOR
+    if np.any(low):
+        ip, ix, im = np.nonzero(low)
+        dl = (m[ip, ix] - rec["z"][im])[None] + rec["lf"][:n_q, wi[ip], im]   # (Q, L)
+        lp[ip, ix, im] = quad.log_sum_exp(dl * dl * (-0.5 / vv[ip, 0, im])
+                                          + rec["lw"][:n_q, wi[ip], im], axis=0)
+    return (lp - 0.5 * np.log(vv) - LN_SQRT_2PI).sum(axis=-1)
 
 
 #: Below this age-summed probability a limit is re-summed in logs (``ndtr`` underflows near
