@@ -270,8 +270,8 @@ def _log_partial(qv, t, h, spread):
     """ln int_0^t h exp(q~(s)) ds for panels' node values ``qv`` (M, n) (q~ their
     interpolating polynomial on [0, 1]), upper limits ``t`` (M,) in [0, 1], widths ``h``.
 
-    An entry whose spread over [0, t] is at most 6 nats takes one 6-node Gauss–Legendre rule
-    (a pure exponential of that spread to ~3e-6); a steeper one is cut into equal sub-panels
+    An entry whose spread over [0, t] is at most 6 nats takes one Gauss–Legendre rule of 3 or
+    6 nodes (a pure exponential of that spread to ~1e-5); a steeper one is cut into equal sub-panels
     of at most ``_SUB_RANGE`` nats (up to 32) with 8 nodes each, and sub-panels whose ends lie
     more than ``_NEGLIGIBLE`` nats below the entry's highest end are skipped. q~ is read by
     Horner's rule on monomial coefficients (degree n - 1 on [0, 1]: well conditioned for the
@@ -280,14 +280,19 @@ def _log_partial(qv, t, h, spread):
     coef = qv @ _monomial_matrix(qv.shape[1]).T                    # (M, n), c_k of s^k
     need = spread * t
     out = np.empty(len(t))
-    gentle = need <= 6.0
-    if np.any(gentle):
-        xs, ws = quad.gauss_legendre_unit(6)
-        sel = np.flatnonzero(gentle)
-        vals = _horner(coef[sel], t[sel, None] * xs)
+    # one short rule: 3 nodes up to a 1.5-nat spread (~1e-5), 6 up to 6 nats (~3e-6); the
+    # spread bounds the values, so exp is shifted by the first coefficient (q~ at s = 0)
+    for lo_need, hi_need, nodes in ((-1.0, 1.5, 3), (1.5, 6.0, 6)):
+        sel = np.flatnonzero((need > lo_need) & (need <= hi_need))
+        if not len(sel):
+            continue
+        xs, ws = quad.gauss_legendre_unit(nodes)
+        c = coef[sel]
+        shift = c[:, :1]
+        vals = _horner(c, t[sel, None] * xs) - shift
         with np.errstate(divide="ignore"):
-            out[sel] = quad.log_sum_exp(vals + np.log(ws), axis=-1) + np.log(t[sel] * h[sel])
-    steep = np.flatnonzero(~gentle)
+            out[sel] = (np.log(np.exp(vals) @ ws) + shift[:, 0]) + np.log(t[sel] * h[sel])
+    steep = np.flatnonzero(need > 6.0)
     if len(steep):
         n_sub = np.minimum(np.ceil(need[steep] / _SUB_RANGE), 32).astype(int)
         ent = np.repeat(np.arange(len(steep)), n_sub)
