@@ -57,7 +57,8 @@ def _nodes(model, theta):
     if model.envelope.time_dependent:
         from diskfield.aged import _age_rule
 
-        rule = _age_rule(model._ages, model.envelope, model.params(theta), model.settings)
+        var, _, _, _ = model._setup(model.params(theta))
+        rule = _age_rule(model._ages, model.envelope, model.params(theta), model.settings, var)
         k_age = rule.logw.shape[-1]
     return r.shape[-1], k_age
 
