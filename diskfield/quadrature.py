@@ -24,8 +24,7 @@ __all__ = [
     "first_crossings",
     "refine_crossings",
     "graded_breaks",
-    "partial_panel_weights",
-    "antiderivative_coefficients",
+    "monomial_interpolation",
 ]
 
 
@@ -188,41 +187,11 @@ def graded_breaks(centre, scale, lo, hi, factors=(1.0, 3.0, 9.0)):
 
 
 @lru_cache(maxsize=16)
-def antiderivative_coefficients(n: int) -> np.ndarray:
-    """C[k, j]: coefficient of t^(k+1) in A_j(t) = int_0^t l_j(s) ds, l_j the Lagrange basis
-    polynomial of the n Gauss–Legendre nodes on [0, 1] (read-only, shape (n, n)).
-
-    ``c = C @ f`` gives the monomial coefficients of the antiderivative of the polynomial
-    interpolating f at the nodes: int_0^t p(s) ds = sum_k c_k t^(k+1).
-    """
+def monomial_interpolation(n: int) -> np.ndarray:
+    """A with ``c = A @ f`` the monomial coefficients (c_k of s^k) of the polynomial that
+    interpolates f at the n Gauss–Legendre nodes of [0, 1] (read-only, shape (n, n);
+    well conditioned for the few nodes used per panel)."""
     x, _ = gauss_legendre_unit(n)
-    vander = np.vander(x, n, increasing=True)          # V[i, k] = x_i^k
-    coef = np.linalg.solve(vander, np.eye(n))          # l_j(s) = sum_k coef[k, j] s^k
-    out = coef / np.arange(1, n + 1)[:, None]
+    out = np.linalg.inv(np.vander(x, n, increasing=True))   # V[i, k] = x_i^k
     out.setflags(write=False)
     return out
-
-
-def partial_panel_weights(t: np.ndarray, n: int) -> np.ndarray:
-    """Weights w_j(t) with int_0^t f(s) ds ~ sum_j w_j(t) f(x_j) on one unit panel.
-
-    Integrates the polynomial interpolating f at the n Gauss–Legendre nodes x_j of [0, 1]
-    (exact for polynomials of degree < n; at t = 1 it equals the Gauss rule to round-off
-    for degree < n).
-
-    Parameters
-    ----------
-    t : ndarray
-        Upper limits in [0, 1].
-    n : int
-        Nodes per panel.
-
-    Returns
-    -------
-    ndarray, shape t.shape + (n,)
-    """
-    t = np.asarray(t, float)[..., None]
-    # repeated products instead of a float power: pow is ~20x slower than a multiply
-    powers = np.repeat(t, n, axis=-1)
-    np.cumprod(powers, axis=-1, out=powers)
-    return powers @ antiderivative_coefficients(n)

@@ -20,8 +20,6 @@ body whose limit sits below its detections).
 """
 from __future__ import annotations
 
-from functools import lru_cache
-
 import numpy as np
 from scipy import special
 
@@ -277,7 +275,7 @@ def _log_partial(qv, t, h, spread):
     Horner's rule on monomial coefficients (degree n - 1 on [0, 1]: well conditioned for the
     few nodes used here).
     """
-    coef = qv @ _monomial_matrix(qv.shape[1]).T                    # (M, n), c_k of s^k
+    coef = qv @ quad.monomial_interpolation(qv.shape[1]).T                    # (M, n), c_k of s^k
     need = spread * t
     out = np.empty(len(t))
     # one short rule: 3 nodes up to a 1.5-nat spread (~1e-5), 6 up to 6 nats (~3e-6); the
@@ -335,16 +333,6 @@ def _horner(coef, x):
     for j in range(coef.shape[1] - 3, -1, -1):
         acc = acc * x + coef[:, j:j + 1]
     return acc
-
-
-@lru_cache(maxsize=8)
-def _monomial_matrix(n):
-    """A with c = A @ f the monomial coefficients of the polynomial interpolating f at the n
-    Gauss–Legendre nodes of [0, 1] (read-only)."""
-    x, _ = quad.gauss_legendre_unit(n)
-    out = np.linalg.inv(np.vander(x, n, increasing=True))
-    out.setflags(write=False)
-    return out
 
 
 def _read_table(table, phi, row):
