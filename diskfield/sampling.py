@@ -210,15 +210,8 @@ class log_probability:
 
     def __call__(self, theta):
         theta = np.atleast_2d(theta)
-        n_bodies = self.model.n_bodies
         lp = np.asarray(self.model.log_prior(theta), float)
-        ok = np.isfinite(lp)
-        pointwise = np.full((theta.shape[0], n_bodies), -np.inf)
-        if np.any(ok):
-            pointwise[ok] = self.model.log_likelihood_pointwise(theta[ok])
-        total = lp + pointwise.sum(axis=1)
-        total = np.where(np.isfinite(total), total, -np.inf)
-        return np.column_stack([total, pointwise])
+        return _with_blobs(self.model, theta, np.isfinite(lp), lp)
 
 
 class _unit_log_probability:
@@ -247,19 +240,24 @@ class _unit_log_probability:
 
     def __call__(self, z):
         z = np.atleast_2d(z)
-        n_bodies = self.model.n_bodies
         log_jac = -(np.logaddexp(0.0, z) + np.logaddexp(0.0, -z)).sum(axis=1)
         theta = self.theta(z)
         ok = np.isfinite(log_jac) & np.isfinite(np.asarray(self.model.log_prior(theta), float))
         ordering = _ordering(self.model) if self.wall else None
         if ordering is not None:
             ok &= ordering.in_order(z)  # logit is increasing: order in z = order in u
-        pointwise = np.full((z.shape[0], n_bodies), -np.inf)
-        if np.any(ok):
-            pointwise[ok] = self.model.log_likelihood_pointwise(theta[ok])
-        total = log_jac + pointwise.sum(axis=1)
-        total = np.where(np.isfinite(total), total, -np.inf)
-        return np.column_stack([total, pointwise])
+        return _with_blobs(self.model, theta, ok, log_jac)
+
+
+def _with_blobs(model, theta, ok, base):
+    """Columns [base + Σ per-body ln L, per-body ln L] (W, 1 + G); ln L is evaluated only
+    where ``ok`` and is ``-inf`` elsewhere (so is the total wherever it is not finite)."""
+    pointwise = np.full((theta.shape[0], model.n_bodies), -np.inf)
+    if np.any(ok):
+        pointwise[ok] = model.log_likelihood_pointwise(theta[ok])
+    total = base + pointwise.sum(axis=1)
+    total = np.where(np.isfinite(total), total, -np.inf)
+    return np.column_stack([total, pointwise])
 
 
 def _moves():
