@@ -162,12 +162,17 @@ def _subset(b, var, stats, gx):
     return zl, vl, np.take_along_axis(lim, order, axis=-1), zbar, v, ln_k
 
 
+#: Limits are inactive this many sds above Y (ln Phi(6) = -1e-9; numerical convention).
+_INACTIVE = 6.0
+
+
 def _y_breaks(z, var, lim, zbar, v, has_det):
     """Sorted Y breakpoints (W, G, B) and the range start Y_a (W, G).
 
-    Graded around the detections' peak, each limit and the mode of e^Y h(Y); the range
-    starts 20 widths below the lowest of them (the limits' normal CDFs are 1 to e^-200 there,
-    so ln C(Y_a) has a closed form) and ends 20 widths above the highest.
+    Graded around the detections' peak and each limit; the range starts where every limit is
+    still inactive (``_INACTIVE`` sds below the lowest, or 20 widths below the lowest feature
+    if that is higher: ln C(Y_a) has a closed form there) and ends 20 widths above the
+    highest.
     """
     sv = np.sqrt(np.where(has_det, v, 1.0))
     peak = zbar + np.where(has_det, v, 0.0)       # e^Y N(Y; zbar, V) peaks at zbar + V
@@ -177,6 +182,9 @@ def _y_breaks(z, var, lim, zbar, v, has_det):
     lo_lim = np.min(np.where(lim, zl - 20.0 * sd, np.inf), axis=-1)
     hi_lim = np.max(np.where(lim, zl + 20.0 * sd, -np.inf), axis=-1)
     y_a = np.minimum(np.where(has_det, peak - 20.0 * sv, np.inf), lo_lim)
+    # below every limit by _INACTIVE sds their normal CDFs are 1 to 1e-9: ln C is in closed
+    # form there (the detections' EMG), so the table need not start lower
+    y_a = np.maximum(y_a, np.min(np.where(lim, zl - _INACTIVE * sd, np.inf), axis=-1))
     y_b = np.maximum(np.where(has_det, peak + 20.0 * sv, -np.inf), hi_lim)
     det_pts = np.where(has_det[..., None], peak[..., None] + sv[..., None] * _Y_GRADES,
                        y_a[..., None])
