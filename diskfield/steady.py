@@ -227,8 +227,9 @@ def _cumulative_table(breaks, lf, tail0, n_nodes):
     -------
     dict
         ``key`` (flat search keys), ``lo``, ``span`` (R,); ``a``, ``h``, ``log_c`` (ln C at
-        each panel start), ``range`` (spread of q over the panel's nodes) of shape (R, B - 1);
-        ``q`` (R, B - 1, n) the node values; ``log_end`` (R,).
+        each panel start), ``range`` (spread of q over the panel's nodes), ``bound`` (ln of
+        the panel's top value times its width) of shape (R, B - 1); ``q`` (R, B - 1, n) the
+        node values; ``log_end`` (R,).
 
     Notes
     -----
