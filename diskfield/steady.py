@@ -26,6 +26,11 @@ from scipy import special
 from . import quadrature as quad
 from .recording import LN_SQRT_2PI, emg_logpdf, emg_logsf
 
+try:  # the compiled kernel of the same rule; the array code below is the fallback
+    from . import _steady_jit as _compiled
+except ImportError:  # pragma: no cover - numba is a declared dependency
+    _compiled = None
+
 __all__ = ["body_spin", "no_spin", "record_spin", "body_spin_with_limits"]
 
 #: Breakpoints of the Y rule, in units of the feature's width, either side of the
@@ -107,6 +112,9 @@ def body_spin_with_limits(phi, wi, gi, gx, b, var, stats, n_nodes):
     """
     z, vl, lim, zbar, v, ln_k = _subset(b, var, stats, gx)
     has_det = np.isfinite(v)
+    if _compiled is not None:
+        return _compiled_reads(phi, wi, gi, gx, b, (z, vl, lim, zbar, v, ln_k, has_det),
+                               n_nodes)
     args = (z, vl, lim, zbar, v, ln_k, has_det)
     breaks, y_a = _y_breaks(z, vl, lim, zbar, v, has_det)
     w, g, nb = breaks.shape
@@ -128,6 +136,25 @@ def body_spin_with_limits(phi, wi, gi, gx, b, var, stats, n_nodes):
         gw, gg = wi[below], pos[gi[below]]
         out[below] = _log_h(phi[below], gw, gg, *args, tail=True)
     return out
+
+
+def _compiled_reads(phi, wi, gi, gx, b, args, n_nodes):
+    """The same rule through the compiled kernel (:mod:`diskfield._steady_jit`)."""
+    z, vl, lim, zbar, v, ln_k, has_det = args
+    w, g = zbar.shape
+    pos = np.zeros(b.lim.shape[0], int)
+    pos[gx] = np.arange(len(gx))
+    flat = (lambda a: np.ascontiguousarray(np.broadcast_to(a, (w, g) + a.shape[2:]).reshape(
+        (w * g,) + a.shape[2:])))
+    rules = [quad.gauss_legendre_unit(k) for k in (n_nodes, 3, 6, _SUB_NODES)]
+    consts = np.array([_INACTIVE, _SKIP_ABOVE_PEAK, _SUB_RANGE, _NEGLIGIBLE, _DILUTED,
+                       _GENTLE])
+    return _compiled.body_spin_with_limits(
+        np.ascontiguousarray(phi, float), wi * g + pos[gi], flat(z[None]), flat(vl),
+        flat(lim[None]), flat(has_det), flat(np.where(has_det, zbar, 0.0)),
+        flat(np.where(has_det, v, 1.0)), flat(np.where(has_det, ln_k, 0.0)),
+        *rules[0], np.ascontiguousarray(quad.monomial_interpolation(n_nodes)),
+        *(a for rule in rules[1:] for a in rule), _Y_GRADES, consts)
 
 
 #: Above the detections' peak by this many sds, e^Y N(Y; zbar, V) is below e^-40.5 of its
@@ -255,7 +282,7 @@ def _cumulative_table(breaks, lf, tail0, n_nodes):
                                     axis=-1)
     with np.errstate(divide="ignore"):
         bound = top0 + np.log(h)
-    pr, pp = np.nonzero(np.isfinite(top) & (h > 0) & (spread > 5.0)
+    pr, pp = np.nonzero(np.isfinite(top) & (h > 0) & (spread > _GENTLE)
                         & (bound > start - _DILUTED))
     panel[pr, pp] = _log_partial(q[pr, pp], np.ones(len(pr)), h[pr, pp], spread[pr, pp])
     log_c = np.logaddexp.accumulate(np.concatenate([tail0[:, None], panel], axis=-1), axis=-1)
@@ -265,6 +292,10 @@ def _cumulative_table(breaks, lf, tail0, n_nodes):
     return dict(key=key, lo=lo, span=span, a=a, h=h, q=q, range=spread, bound=bound,
                 log_c=log_c[:, :-1], log_end=log_c[:, -1], nb=nb)
 
+
+#: Largest spread of q [nats] over a panel whose table entry keeps the 5-node Gauss sum on e^q
+#: (~1e-5 relative for a pure exponential; numerical convention).
+_GENTLE = 5.0
 
 #: Largest spread of q [nats] over one sub-panel of the 8-node Gauss–Legendre rule that
 #: integrates exp of q's interpolant (relative error ~4e-5 for a pure exponential of that
