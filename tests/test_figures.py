@@ -189,3 +189,12 @@ def test_pair_figure_marks_declared_truth_and_keeps_it_in_view():
     assert [t.get_text() for t in fig.legends[0].get_texts()] == [
         "declared truth (simulated data)"]
     assert not F.pair_figure(ring, bins=10).legends
+
+
+def test_pair_figure_names_ordered_rings_inner_and_outer():
+    rng = np.random.default_rng(seed_for("pairs-ordered"))
+    ring = {"ring_radius": rng.normal(3.0, 0.3, 300), "ring2_radius": rng.normal(9.0, 1.0, 300)}
+    fig = F.pair_figure(ring, F.ORDERED_RING_LABELS, bins=10)
+    texts = [ax.get_xlabel() for ax in fig.axes] + [ax.get_ylabel() for ax in fig.axes]
+    assert "r0 of inner ring (AU)" in texts and "r0 of outer ring (AU)" in texts
+    assert not any("ring 2" in t for t in texts)

@@ -9,7 +9,7 @@ from .comparison import comparison_figure
 from .data import (Bands, BodyPoint, RecordPoint, bands_from_draws, bands_from_profile_rows,
                    body_points_from_posterior, body_points_from_prior,
                    implied_field_quantiles, record_points)
-from .pairs import RING_PARAMETERS, pair_figure
+from .pairs import ORDERED_RING_LABELS, RING_PARAMETERS, pair_figure
 from .predictive import predictive_coverage, predictive_figure, predictive_intervals
 from .profile import field_profile_figure, field_time_figure
 
@@ -23,6 +23,7 @@ __all__ = [
     "body_points_from_prior",
     "implied_field_quantiles",
     "record_points",
+    "ORDERED_RING_LABELS",
     "RING_PARAMETERS",
     "pair_figure",
     "predictive_coverage",

@@ -1,12 +1,14 @@
 """Marginal and pair plots of posterior draws (a compact corner-style plot of our own)."""
 from __future__ import annotations
 
+import textwrap
+
 import numpy as np
 from matplotlib.lines import Line2D
 
 from ..plotstyle import OKABE_ITO, new_figure, style
 
-__all__ = ["RING_PARAMETERS", "pair_figure"]
+__all__ = ["ORDERED_RING_LABELS", "RING_PARAMETERS", "pair_figure"]
 
 #: The ring parameters shown by default, with axis labels and units.
 RING_PARAMETERS = {
@@ -18,6 +20,17 @@ RING_PARAMETERS = {
     "ring2_width": "w of ring 2 (AU)",
 }
 
+
+#: Axis labels when the two rings are ordered by radius (``ring`` inner, ``ring2`` outer;
+#: :mod:`diskfield.ordering`).
+ORDERED_RING_LABELS = {
+    "ring_radius": "r0 of inner ring (AU)",
+    "ring_amplitude": "A of inner ring (dimensionless)",
+    "ring_width": "w of inner ring (AU)",
+    "ring2_radius": "r0 of outer ring (AU)",
+    "ring2_amplitude": "A of outer ring (dimensionless)",
+    "ring2_width": "w of outer ring (AU)",
+}
 
 _TRUTH_COLOR = OKABE_ITO[2]
 
@@ -57,7 +70,8 @@ def _off_diagonal(ax, x, y, xlim, ylim, bins) -> None:
 
 
 def pair_figure(samples: dict[str, np.ndarray], labels: dict[str, str] | None = None, *,
-                truth: dict[str, float] | None = None, bins: int = 30, width_in: float = 5.0):
+                truth: dict[str, float] | None = None, bins: int = 30,
+                width_in: float | None = None):
     """Corner-style plot: marginal histograms on the diagonal, 2-D histograms below.
 
     Parameters
@@ -71,8 +85,9 @@ def pair_figure(samples: dict[str, np.ndarray], labels: dict[str, str] | None = 
         absent from it get no line.
     bins : int
         Histogram bins per axis.
-    width_in : float
-        Figure width and height [inch].
+    width_in : float, optional
+        Figure width and height [inch]; default 5 up to three parameters, else 7 (a full
+        page width), with the axis labels wrapped onto two lines.
 
     Returns
     -------
@@ -85,6 +100,10 @@ def pair_figure(samples: dict[str, np.ndarray], labels: dict[str, str] | None = 
     true = [(truth or {}).get(n) for n in names]
     lims = [_limits(x, t) for x, t in zip(data, true)]
     n = len(names)
+    crowded = n > 3
+    width_in = width_in or (7.0 if crowded else 5.0)
+    text = {k: textwrap.fill(labels.get(k, k), 16, break_long_words=False) if crowded else labels.get(k, k)
+            for k in names}
     with style():
         fig, axes = new_figure(width_in, width_in, nrows=n, ncols=n, squeeze=False)
         for i in range(n):
@@ -99,11 +118,11 @@ def pair_figure(samples: dict[str, np.ndarray], labels: dict[str, str] | None = 
                     _off_diagonal(ax, data[j], data[i], lims[j], lims[i], bins)
                     _mark_truth(ax, true[j], true[i])
                 if i == n - 1:
-                    ax.set_xlabel(labels.get(names[j], names[j]))
+                    ax.set_xlabel(text[names[j]], fontsize=7 if crowded else None)
                 else:
                     ax.tick_params(labelbottom=False)
                 if j == 0 and i > 0:
-                    ax.set_ylabel(labels.get(names[i], names[i]))
+                    ax.set_ylabel(text[names[i]], fontsize=7 if crowded else None)
                 elif j > 0 or i == 0:
                     ax.tick_params(labelleft=False)
         if n == 1:

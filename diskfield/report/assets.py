@@ -162,12 +162,17 @@ def pair_blocks(ctx, run) -> list:
                 if p in fit.idata.posterior.data_vars}
         if ring:
             truth = _declared_truth(run, name)
+            ordered = bool((fit.fit.get("label_ordering") or {}).get("applied"))
             caption = (f"Ring parameters of model {name}: marginal posteriors (diagonal; median "
                        "solid, 16th/84th percentiles dotted) and pairwise 2-D histograms."
+                       + (" The two rings are labelled by radius (inner, outer): their priors "
+                          "are identical, so the model is sampled with ring_radius <= "
+                          "ring2_radius." if ordered else "")
                        + (" Dashed vermilion lines and crosses: the declared true values of "
                           "the simulated compilation." if truth else ""))
-            out.append(ctx.figure(F.pair_figure(ring, truth=truth), f"ring_parameters_{name}",
-                                  caption))
+            labels = F.ORDERED_RING_LABELS if ordered else None
+            out.append(ctx.figure(F.pair_figure(ring, labels, truth=truth),
+                                  f"ring_parameters_{name}", caption))
     return out or [Para("No model of this run has ring parameters.")]
 
 
