@@ -102,8 +102,9 @@ def pair_figure(samples: dict[str, np.ndarray], labels: dict[str, str] | None = 
     n = len(names)
     crowded = n > 3
     width_in = width_in or (7.0 if crowded else 5.0)
-    text = {k: textwrap.fill(labels.get(k, k), 16, break_long_words=False) if crowded else labels.get(k, k)
-            for k in names}
+    text = {k: labels.get(k, k) for k in names}
+    if crowded:
+        text = {k: textwrap.fill(v, 16, break_long_words=False) for k, v in text.items()}
     with style():
         fig, axes = new_figure(width_in, width_in, nrows=n, ncols=n, squeeze=False)
         for i in range(n):
