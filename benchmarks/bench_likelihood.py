@@ -1,13 +1,14 @@
 """Timing of the marginalised likelihood (a script: prints figures and ratios, asserts nothing).
 
-Run:  python benchmarks/bench_likelihood.py [--walkers 32] [--repeat 10] [--aged-repeat 1]
+Run:  python benchmarks/bench_likelihood.py [--walkers 64] [--repeat 10] [--aged-repeat 1]
 
 (a) time per vectorised ``log_likelihood`` call on the demo compilation for each profile and
     envelope; (b) the floor of the direct scheme, a bare ``scipy.special.log_ndtr`` over
     walkers x records x distance nodes x age nodes elements (the node counts the model used),
     timed in the same run; (c) the formulation written by hand (latents as explicit
     parameters, a Python loop over records) per call; (d) scaling over synthetic
-    compilations of 30, 100 and 300 records.
+    compilations of 30, 100, 300 and 1000 records; (e) the body-shared spin with upper limits
+    through its compiled kernel against the same rule in array code, same walkers.
 """
 from __future__ import annotations
 
@@ -95,7 +96,7 @@ def _row(comp, pset, prof, env, spin, w, rng, args):
 
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--walkers", type=int, default=32)
+    ap.add_argument("--walkers", type=int, default=64)
     ap.add_argument("--repeat", type=int, default=10)
     ap.add_argument("--aged-repeat", type=int, default=1,
                     help="calls per timing for time-dependent envelopes (seconds per call)")
@@ -127,7 +128,7 @@ def main(argv=None):
           f"marginalised model per walker at {w} walkers: see (a) / {w}")
     print("\n(d) scaling (ring, steady, body spin): synthetic compilations")
     print(f"{'records':>8s} {'bodies':>7s} {'ms/call':>9s} {'us/record':>10s}")
-    for n in (30, 100, 300):
+    for n in (30, 100, 300, 1000):
         design = synthetic_compilation(n, rng)
         m0 = build_model(design, profile="ring", priors=pset)
         truth = np.array([p.sample(rng) for p in m0.priors])
@@ -136,6 +137,30 @@ def main(argv=None):
         theta = _walkers(model, w, rng)
         t = _timed(lambda: model.log_likelihood(theta), max(1, args.repeat // 4))
         print(f"{n:8d} {len(sim.bodies):7d} {1e3 * t:9.2f} {1e6 * t / n:10.1f}")
+    _compiled_versus_array(comp, pset, w, rng, args)
+
+
+def _compiled_versus_array(comp, pset, w, rng, args):
+    """(e) the limits part, whole call, with the compiled kernel and with the array code."""
+    from diskfield import steady
+
+    if steady._compiled is None:
+        print("\n(e) numba not importable: the array code is in use")
+        return
+    print(f"\n(e) body-shared spin with upper limits, {w} walkers: compiled kernel vs array code"
+          " (whole log_likelihood call)")
+    kernel = steady._compiled
+    for prof in ("smooth", "ring", "two-ring"):
+        model = build_model(comp, profile=prof, priors=pset)
+        theta = _walkers(model, w, rng)
+        t_c = _timed(lambda: model.log_likelihood(theta), args.repeat)
+        steady._compiled = None
+        try:
+            t_a = _timed(lambda: model.log_likelihood(theta), args.repeat)
+        finally:
+            steady._compiled = kernel
+        print(f"{prof:12s} compiled {1e3 * t_c:8.2f} ms   array {1e3 * t_a:8.2f} ms   "
+              f"ratio {t_a / t_c:5.2f}")
 
 
 if __name__ == "__main__":
