@@ -51,6 +51,9 @@ class Prior:
         x = np.asarray(x, dtype=float)
         lo, hi = self.support
         inside = np.isfinite(x) & (x >= lo) & (x <= hi)
+        if inside.all():  # the common case (every walker inside): no masked copy
+            out = np.asarray(self._logpdf(x), dtype=float)
+            return out if out.ndim else float(out)
         out = np.full(x.shape, -np.inf)
         if np.any(inside):
             out[inside] = self._logpdf(x[inside])
