@@ -522,9 +522,10 @@ def _feature_breaks(p, profile):
 def _scout_grid(b, features, p, s):
     """Increasing scout abscissae (W, N): log-spaced over all supports, plus feature points."""
     lo, hi = b.lo.min(), b.hi.max()
-    base = np.geomspace(lo, hi, s.scout_nodes)
-    pts = [np.broadcast_to(np.concatenate([base, b.lo, b.hi]),
-                             (len(p["intrinsic_scatter"]), len(base) + 2 * len(b.lo)))]
+    # every distinct support end once: bodies of one reservoir share theirs, so the grid
+    # (and the (W, G, N) crossing search on it) does not grow with the number of bodies
+    fixed = np.unique(np.concatenate([np.geomspace(lo, hi, s.scout_nodes), b.lo, b.hi]))
+    pts = [np.broadcast_to(fixed, (len(p["intrinsic_scatter"]), len(fixed)))]
     for prefix in ("ring", "ring2"):
         if f"{prefix}_radius" in p:
             u = np.linspace(-6.0, 6.0, s.ring_scout)
