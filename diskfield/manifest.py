@@ -21,7 +21,8 @@ from pathlib import Path
 __all__ = ["write_atomic", "atomic_path", "sha256_file", "package_versions",
            "build_manifest", "write_manifest", "utc_now"]
 
-_PACKAGES = ("numpy", "scipy", "emcee", "arviz", "dynesty", "astropy", "h5py", "diskfield")
+_PACKAGES = ("numpy", "scipy", "numba", "emcee", "arviz", "dynesty", "astropy", "h5py",
+             "diskfield")
 
 
 def write_atomic(path, data) -> Path:
