@@ -37,6 +37,12 @@ Precisely, for scale s:
 Parallel work (``jobs``): every model's fit-and-evidence and every wider-prior evidence
 run are independent tasks, run on ``jobs`` worker processes (:mod:`diskfield.workers`);
 the results are identical to ``jobs=1``. Each finished task prints one progress line.
+
+Exact LOO refits (``loo_refit``, ``--loo-refit``): after the fits, every body whose Pareto
+k exceeds 0.7 is refitted out of the data, one task per (model, body) on the same workers
+(:mod:`diskfield.loorefit`); the exact ``elpd_i`` replace the PSIS ones in ``elpd_loo``,
+``elpd_loo_se``, ``p_loo`` and ΔELPD, and the row's ``note`` names the refitted bodies
+(and any refit that did not converge). No column is added.
 """
 from __future__ import annotations
 
@@ -216,7 +222,7 @@ def compare(comp, models=("smooth", "ring", "two-ring"), *, envelope="steady", s
             priors=None, reference="smooth", evidence=True, seed=DEFAULT_SEED, out=None,
             settings: SamplerSettings = SamplerSettings(), nlive=DEFAULT_NLIVE,
             dlogz=DEFAULT_DLOGZ, resume=False, strict=False, sensitivity=True,
-            argv=None, build=None, jobs=1, log=None) -> ComparisonOutcome:
+            argv=None, build=None, jobs=1, log=None, loo_refit=False) -> ComparisonOutcome:
     """Fit several models to one compilation and compare them.
 
     Parameters
@@ -252,6 +258,11 @@ def compare(comp, models=("smooth", "ring", "two-ring"), *, envelope="steady", s
         cores); capped at the number of tasks. Results do not depend on it.
     log : callable, optional
         ``log(str)`` receives one line per finished stage with its wall time [s].
+    loo_refit : bool
+        After the fits, refit every model once without each body whose Pareto k exceeds
+        0.7 (:mod:`diskfield.loorefit`; the refits are tasks like the fits, on ``jobs``
+        workers) and use the exact ``elpd_i`` in ``elpd_loo``, its SE, ``p_loo`` and
+        ΔELPD; the row's note names the refitted bodies, ``fit.json`` holds the details.
     """
     models = _check_models(models, reference)
     out = Path(out) if out is not None else None
@@ -267,6 +278,8 @@ def compare(comp, models=("smooth", "ring", "two-ring"), *, envelope="steady", s
                   for n in ringed for s in PRIOR_SCALES if s < 1.0}
     run = _TaskRunner(comp, seed, out, settings, resume, argv, nlive, dlogz, jobs, say)
     fits, evid, scaled = run.fits_and_wide(built, evidence, wide)
+    if loo_refit:
+        fits = run.loo_refits(fits)
     scaled.update(_narrow_evidence(run, evid, built, narrow))
     sds = _savage_dickey(fits, seed)
     rows = comparison_rows(fits, evid, sds, reference)
@@ -331,6 +344,27 @@ class _TaskRunner:
                   for i, k in enumerate(keys)}
         return fits, evid, scaled
 
+    def loo_refits(self, fits):
+        """Exact leave-one-body-out refits of every flagged body of every model."""
+        from .criteria import PARETO_K_FLAG
+        from .loorefit import bodies_to_refit, finish, refit_task
+
+        tasks, owner = [], []
+        for name, f in fits.items():
+            bodies = bodies_to_refit(f.criteria)
+            if not bodies:
+                self.say(f"[{time.perf_counter() - self.t0:5.0f} s] {name}: no body with "
+                         f"Pareto k > {PARETO_K_FLAG:g}; nothing refitted (PSIS-LOO kept)")
+            for body in bodies:
+                tasks.append((f"{name} LOO refit without {body}",
+                              lambda f=f, b=body: refit_task(
+                                  f, b, seed=self.seed, settings=self._task_settings,
+                                  resume=self.resume)()))
+                owner.append(name)
+        results = self.run(tasks) if tasks else []
+        return {name: finish(f, [r for o, r in zip(owner, results) if o == name])
+                for name, f in fits.items()}
+
     def _fit(self, model, name, evidence):
         sub = self.out / name if self.out else None
         # with --resume, a model whose fit never started simply starts
@@ -357,6 +391,8 @@ class _TaskRunner:
 
 
 def _describe(result) -> str:
+    if hasattr(result, "describe"):  # a LOO refit
+        return result.describe()
     if isinstance(result, tuple):
         fit, ev = result
         text = (f"MCMC {fit.run.wall_time_s:.0f} s ({fit.run.n_steps} steps, "
@@ -471,7 +507,10 @@ def comparison_rows(fits, evid, sds, reference) -> list:
 
 def _row_note(f, sd) -> str:
     notes = [] if f.run.converged else ["NOT CONVERGED: " + "; ".join(f.run.flags)]
-    if f.criteria.n_bad_k:
+    refit = getattr(f.criteria, "loo_refit", None)
+    if refit:  # --loo-refit: which bodies were refitted (or that none needed it)
+        notes.append(refit["note"])
+    elif f.criteria.n_bad_k:
         notes.append(f"Pareto k > 0.7 for {', '.join(f.criteria.bad_k_bodies)}")
     if sd is not None and not sd.applicable:
         notes.append(f"Savage-Dickey not applicable: {sd.reason}")

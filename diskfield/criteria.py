@@ -15,7 +15,7 @@ Scales and directions (stated in every column name downstream):
 """
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
@@ -75,6 +75,10 @@ class Criteria:
     elpd_loo_i: tuple
     rhat: dict
     ess_bulk: dict
+    #: Exact leave-one-body-out refits (:mod:`diskfield.loorefit`); empty when not requested.
+    #: When bodies were refitted, ``elpd_loo``, ``elpd_loo_se``, ``p_loo`` and
+    #: ``elpd_loo_i`` hold the corrected values and this holds the PSIS ones.
+    loo_refit: dict = field(default_factory=dict)
 
     @property
     def rhat_max(self) -> float:
@@ -86,6 +90,8 @@ class Criteria:
 
     def as_dict(self) -> dict:
         d = asdict(self)
+        if not d["loo_refit"]:
+            del d["loo_refit"]
         d.update(rhat_max=self.rhat_max, ess_min=self.ess_min)
         return d
 

@@ -22,6 +22,7 @@ import math
 import os
 import re
 import tomllib
+import dataclasses
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -37,6 +38,7 @@ __all__ = [
     "read_compilation",
     "write_compilation",
     "compilation_table",
+    "without_body",
     "known_reservoir_names",
     "KINDS",
     "METHODS",
@@ -917,6 +919,73 @@ def read_compilation(path, *, known_reservoirs=None) -> Compilation:
         data_hash=hashlib.sha256(data).hexdigest(),
         reservoirs=tuple(dict.fromkeys(b.reservoir for b in bodies)),
     )
+
+
+def without_body(comp: Compilation, body: str,
+                 note: str = "left out for a leave-one-body-out refit") -> Compilation:
+    """``comp`` with every included record of ``body`` out of the fit, as ``include = false``.
+
+    The other bodies keep their order, records and distance overrides; the left-out
+    records are listed in ``excluded`` with ``note`` (and marked ``include = false`` in
+    ``table`` when there is one).
+
+    Parameters
+    ----------
+    comp : Compilation
+    body : str
+        A fitted body of ``comp``.
+    note : str
+        Reason carried into ``excluded``.
+
+    Returns
+    -------
+    Compilation
+        ``source`` says which body was left out; ``data_hash`` is derived from the
+        original hash and the body's name (a checkpoint of the full data is not reused).
+
+    Raises
+    ------
+    OptionError
+        ``body`` is not a fitted body, or it is the only one.
+    """
+    names = comp.body_names
+    if body not in names:
+        raise OptionError("body", body, "one of the fitted bodies: " + ", ".join(names))
+    if len(names) < 2:
+        raise OptionError("body", body, "a body of a compilation with at least two bodies "
+                          "(leaving out the only body leaves nothing to fit)")
+    g = names.index(body)
+    recs = comp.records
+    keep = np.asarray(recs.body_index) != g
+    new_index = np.cumsum(keep) - 1  # old record index -> new (for kept records)
+    fields = {f.name: np.asarray(getattr(recs, f.name))[keep] for f in dataclasses.fields(recs)}
+    fields["body_index"] = fields["body_index"] - (fields["body_index"] > g)
+    bodies = tuple(dataclasses.replace(b, record_indices=tuple(int(new_index[i])
+                                                               for i in b.record_indices))
+                   for k, b in enumerate(comp.bodies) if k != g)
+    left = [str(recs.record[i]) for i in comp.bodies[g].record_indices]
+    table, rows = _table_without(comp.table, left)
+    digest = (hashlib.sha256(f"{comp.data_hash}\0without\0{body}".encode()).hexdigest()
+              if comp.data_hash else "")
+    return dataclasses.replace(
+        comp, records=dataclasses.replace(recs, **fields), bodies=bodies, table=table,
+        excluded=comp.excluded + tuple(Exclusion(r, body, rows.get(r, 0), note) for r in left),
+        source=f"{comp.source} without {body}", data_hash=digest,
+        reservoirs=tuple(dict.fromkeys(b.reservoir for b in bodies)))
+
+
+def _table_without(table, left):
+    """Copy of ``table`` with the ``left`` records' include flag false; their data rows."""
+    if table is None or "record" not in getattr(table, "colnames", ()):
+        return table, {}
+    out = table.copy()
+    ids = np.asarray(out["record"]).astype(str)
+    hit = np.isin(ids, left)
+    include = (np.asarray(out["include"], bool) if "include" in out.colnames
+               else np.ones(len(out), bool))
+    out["include"] = include & ~hit
+    rows = np.asarray(out["row"]) if "row" in out.colnames else np.arange(1, len(out) + 1)
+    return out, {str(r): int(n) for r, n, h in zip(ids, rows, hit) if h}
 
 
 # ----------------------------------------------------------------------------- writing

@@ -59,7 +59,7 @@ class FitOutcome:
 def fit(comp, profile: str = "ring", *, envelope: str = "steady", spin: str = "body",
         priors=None, seed: int = DEFAULT_SEED, out=None,
         settings: SamplerSettings = SamplerSettings(), resume: bool = False,
-        strict: bool = False, argv=None) -> FitOutcome:
+        strict: bool = False, argv=None, loo_refit: bool = False, log=None) -> FitOutcome:
     """Build the model of ``comp`` and fit it (see :func:`fit_model`).
 
     Parameters
@@ -71,12 +71,26 @@ def fit(comp, profile: str = "ring", *, envelope: str = "steady", spin: str = "b
         User prior files read on top of the shipped ones.
     seed, out, settings, resume, strict, argv
         As for :func:`fit_model`.
+    loo_refit : bool
+        Replace the PSIS-LOO estimate of every body with Pareto k > 0.7 by an exact
+        leave-one-body-out refit (:mod:`diskfield.loorefit`); ``fit.json`` is rewritten.
+    log : callable, optional
+        ``log(str)`` receives one line per refit.
     """
     from .likelihood import build_model
 
     model = build_model(comp, profile=profile, envelope=envelope, spin=spin, priors=priors)
-    return fit_model(model, comp=comp, seed=seed, out=out, settings=settings, resume=resume,
-                     strict=strict, argv=argv)
+    outcome = fit_model(model, comp=comp, seed=seed, out=out, settings=settings,
+                        resume=resume, strict=strict and not loo_refit, argv=argv)
+    if loo_refit:
+        from .loorefit import loo_refit as refit
+
+        outcome = refit(outcome, seed=seed, settings=settings, resume=resume, log=log)
+        if strict and not outcome.run.converged:
+            raise ConvergenceError(f"model {profile!r} did not converge: "
+                                   + "; ".join(outcome.run.flags)
+                                   + " (raise --max-steps or drop --strict)")
+    return outcome
 
 
 def fit_model(model, *, comp=None, seed: int = DEFAULT_SEED, out=None,

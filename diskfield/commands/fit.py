@@ -5,13 +5,16 @@ Examples::
     diskfield fit compilation.ecsv --model ring
     diskfield fit compilation.ecsv --model smooth --envelope dissipating --priors mine.toml
     diskfield fit compilation.ecsv --model ring --resume          # continue after a kill
+    diskfield fit compilation.ecsv --model ring --loo-refit       # exact LOO for high-k bodies
 
 Writes ``--out`` (default ``diskfield-fit-<model>``): ``posterior.nc``, ``fit.json``,
 ``posterior_summary_<model>.csv``, ``field_profile_<model>.csv``, ``compilation.ecsv``,
 ``priors_used/``, ``checkpoint.h5`` and ``manifest.json``. The chain runs until the
 autocorrelation time is stable and the chain exceeds 50 τ, or ``--max-steps``; an
 unconverged fit is flagged in ``fit.json`` and on screen, and ``--strict`` makes it an
-error (exit status 2).
+error (exit status 2). ``--loo-refit`` refits the model once without each body whose
+Pareto k exceeds 0.7 (checkpoints in ``loo_refit/``) and puts the exact values into
+``fit.json``'s criteria (the PSIS ones are kept under ``criteria.loo_refit``).
 """
 from __future__ import annotations
 
@@ -48,6 +51,9 @@ def add_model_options(parser) -> None:
     parser.add_argument("--strict", action="store_true",
                         help="exit with status 2 if a fit did not converge")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
+    parser.add_argument("--loo-refit", action="store_true",
+                        help="replace the PSIS-LOO estimate of each body with Pareto k > 0.7 "
+                        "by an exact refit without that body (one extra MCMC run per body)")
 
 
 def add_arguments(parser) -> None:
@@ -76,7 +82,8 @@ def run(args) -> int:
     seed = DEFAULT_SEED if args.seed is None else args.seed
     result = fit(comp, args.model, envelope=args.envelope, spin=args.spin,
                  priors=args.priors or None, seed=seed, out=out, settings=settings,
-                 resume=args.resume, strict=args.strict)
+                 resume=args.resume, strict=args.strict, loo_refit=args.loo_refit,
+                 log=lambda line: print("   " + line, flush=True))
     print(summary_text(result))
     return 0
 
@@ -89,6 +96,9 @@ def summary_text(result) -> str:
              f"chain = {f['chain_over_tau']:.0f} tau",
              f"max ln L = {c.max_log_likelihood:.2f}, elpd_loo = {c.elpd_loo:.2f} "
              f"+/- {c.elpd_loo_se:.2f}, max Pareto k = {c.pareto_k_max:.2f}"]
+    refit = getattr(c, "loo_refit", None) or {}
+    if refit.get("note"):
+        lines.append(f"LOO: {refit['note']}")
     lines += [f"flag: {flag}" for flag in f["flags"]]
     if result.out is not None:
         lines.append(f"written to {result.out}")
