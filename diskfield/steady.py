@@ -20,6 +20,8 @@ body whose limit sits below its detections).
 """
 from __future__ import annotations
 
+import types
+
 import numpy as np
 from scipy import special
 
@@ -31,7 +33,7 @@ try:  # the compiled kernel of the same rule; the array code below is the fallba
 except ImportError:  # pragma: no cover - numba is a declared dependency
     _compiled = None
 
-__all__ = ["body_spin", "no_spin", "record_spin", "body_spin_with_limits"]
+__all__ = ["body_spin", "no_spin", "record_spin", "body_spin_with_limits", "compile_kernels"]
 
 #: Breakpoints of the Y rule, in units of the feature's width, either side of the
 #: detections' peak and of each limit (GL panels between them; +-20 widths is the range kept).
@@ -136,6 +138,22 @@ def body_spin_with_limits(phi, wi, gi, gx, b, var, stats, n_nodes):
         gw, gg = wi[below], pos[gi[below]]
         out[below] = _log_h(phi[below], gw, gg, *args, tail=True)
     return out
+
+
+def compile_kernels() -> None:
+    """Compile (or load from numba's cache) the limits kernel now, on a one-body input.
+
+    Worker processes forked afterwards inherit the compiled code instead of each compiling
+    it (or racing to write the cache) on first use. No-op without numba.
+    """
+    if _compiled is None:
+        return
+    b = types.SimpleNamespace(z=np.array([[1.0, 0.5]]), lim=np.array([[False, True]]))
+    var = np.full((1, 1, 2), 0.1)
+    stats = (np.array([[1.0]]), np.array([[0.1]]), np.array([[0.0]]))
+    one = np.zeros(1, int)
+    _compiled_reads(np.array([1.0]), one, one, one, b,
+                    _subset(b, var, stats, one) + (np.array([[True]]),), 5)
 
 
 def _compiled_reads(phi, wi, gi, gx, b, args, n_nodes):
