@@ -18,7 +18,8 @@ from .assets import (ReportContext, body_points, comparison_blocks, compilation_
 from .loading import SavedRunData, load_run
 from .render import Items, Para, Section, to_html_page, to_markdown_page
 from .sections import (assumption_blocks, convergence_blocks, exclusion_blocks,
-                       manifest_blocks, sensitivity_blocks, truth_blocks, verdict_blocks)
+                       loo_refit_blocks, manifest_blocks, sensitivity_blocks, truth_blocks,
+                       verdict_blocks)
 
 __all__ = ["build_report", "attach_models", "report_sections"]
 
@@ -81,7 +82,8 @@ def report_sections(ctx: ReportContext, run: SavedRunData) -> list:
     sections += _figure_sections(ctx, run, priors)
     if run.kind == "comparison":
         sections.append(Section("Prior sensitivity", tuple(sensitivity_blocks(ctx, run))))
-    sections.append(Section("Convergence diagnostics", tuple(convergence_blocks(ctx, run, diffs))))
+    sections.append(Section("Convergence diagnostics", tuple(convergence_blocks(ctx, run, diffs)
+                                                             + loo_refit_blocks(ctx, run))))
     sections.append(Section("Assumptions and cautions", tuple(assumption_blocks(run, priors))))
     sections.append(Section("Compilation as fitted", tuple(exclusion_blocks(run)
                                                            + compilation_blocks(ctx, run))))

@@ -1,5 +1,5 @@
-"""The report's text sections: verdict, prior sensitivity, convergence, assumptions,
-exclusions and manifest."""
+"""The report's text sections: verdict, prior sensitivity, convergence, exact leave-one-out
+refits, assumptions, exclusions and manifest."""
 from __future__ import annotations
 
 import json
@@ -7,11 +7,13 @@ import math
 
 import numpy as np
 
+from ..sigfig import round_to_decimals
 from ..tables import Column, TextTable, measure
 from .render import Items, Links, Para, Pre
 
-__all__ = ["truth_blocks", "verdict_blocks", "sensitivity_blocks", "convergence_table", "convergence_blocks",
-           "assumption_blocks", "exclusion_blocks", "manifest_blocks", "CAUTION"]
+__all__ = ["truth_blocks", "verdict_blocks", "sensitivity_blocks", "convergence_table",
+           "convergence_blocks", "loo_refit_table", "loo_refit_blocks", "assumption_blocks",
+           "exclusion_blocks", "manifest_blocks", "CAUTION"]
 
 CAUTION = ("The conclusions rest with the authors' judgement of each record: the model treats "
            "every fitted record as a faithful, if biased and noisy, recording of the ambient "
@@ -150,6 +152,87 @@ def convergence_blocks(ctx, run, diffs: dict) -> list:
              for n, d in diffs.items() if d.get("n_bad_k")]
     if warn:
         blocks.append(Items(tuple(warn)))
+    return blocks
+
+
+def _loo_refits(run) -> dict:
+    """``criteria.loo_refit`` of each fit that requested exact refits (model -> record)."""
+    out = {}
+    for name, f in run.fits.items():
+        info = (f.fit.get("criteria") or {}).get("loo_refit")
+        if isinstance(info, dict) and (info.get("requested", True) or info.get("bodies")):
+            out[name] = info
+    return out
+
+
+def _decimals(x, decimals: int) -> str:
+    try:
+        x = float(x)
+    except (TypeError, ValueError):
+        return ""
+    return "" if math.isnan(x) else round_to_decimals(x, decimals)
+
+
+def loo_refit_table(refits: dict) -> TextTable:
+    """Pareto k, PSIS and exact elpd_i and the refit's convergence of each refitted body.
+
+    ``refits`` maps a model name to its ``fit.json`` ``criteria.loo_refit`` record;
+    unconverged refits are marked ``*`` in the body column and in a note.
+    """
+    cols = (Column("model", "Model", align="l"), Column("body", "Body", align="l"),
+            Column("pareto_k", "Pareto k", latex=r"$k$"),
+            Column("psis_elpd_i", "PSIS elpd_i", latex=r"PSIS elpd$_i$"),
+            Column("exact_elpd_i", "Exact elpd_i", latex=r"exact elpd$_i$"),
+            Column("converged", "Refit converged"), Column("n_steps", "Steps"))
+    rows, bad = [], []
+    for model, info in refits.items():
+        for b in info.get("bodies") or ():
+            ok, body = bool(b.get("converged")), str(b.get("body", ""))
+            if not ok:
+                bad.append(f"{body} (model {model})")
+            rows.append((model, body + ("" if ok else "*"), _decimals(b.get("pareto_k"), 2),
+                         _decimals(b.get("psis_elpd_i"), 2), _decimals(b.get("exact_elpd_i"), 2),
+                         "yes" if ok else "NO", str(b.get("n_steps", ""))))
+    notes = ("elpd_i = ln p(y_i | y_-i) of one parent body (higher is better): PSIS, importance "
+             "sampled from the full-data posterior; exact, from a refit of the model without "
+             "the body. Pareto k is the PSIS diagnostic of the full-data fit.",)
+    if bad:
+        notes += (f"* refit not converged ({', '.join(bad)}): exact elpd_i provisional.",)
+    return TextTable(cols, tuple(rows), caption="Exact leave-one-out refits",
+                     label="tab:loo_refit", notes=notes)
+
+
+def _refit_sentence(run, refits: dict) -> str:
+    where = ("In the model comparison, elpd_loo, its SE, p_loo and ΔELPD"
+             if run.kind == "comparison" else "In fit.json, elpd_loo, its SE and p_loo")
+    text = (f"{where} use the exact elpd_i of these bodies in place of the PSIS estimates "
+            "(Pareto k and max Pareto k stay the full-data PSIS diagnostics).")
+    bad = [f"{b.get('body')} (model {m}; {b.get('n_steps', '?')} steps, "
+           f"{_num(b.get('chain_over_tau'), '.1f')} τ)"
+           for m, info in refits.items() for b in info.get("bodies") or ()
+           if not b.get("converged")]
+    if bad:
+        one = len(bad) == 1
+        text += (f" The refit{'' if one else 's'} without {', '.join(bad)} did NOT converge: "
+                 f"{'its' if one else 'their'} exact elpd_i {'is' if one else 'are'} "
+                 "provisional.")
+    return text
+
+
+def loo_refit_blocks(ctx, run) -> list:
+    """The exact leave-one-out refits of ``--loo-refit`` (nothing when none was requested)."""
+    refits = _loo_refits(run)
+    done = {m: info for m, info in refits.items() if info.get("bodies")}
+    none = [m for m in refits if m not in done]
+    blocks = []
+    if done:
+        blocks += [ctx.table(loo_refit_table(done), "loo_refit"),
+                   Para(_refit_sentence(run, done))]
+    if none:
+        flag = refits[none[0]].get("pareto_k_flag", 0.7)
+        blocks.append(Para(f"Exact leave-one-out refits were requested for model"
+                           f"{'s' if len(none) > 1 else ''} {', '.join(none)}: no body had "
+                           f"Pareto k > {flag:g}, so PSIS-LOO is kept unchanged."))
     return blocks
 
 
