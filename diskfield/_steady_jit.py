@@ -24,6 +24,8 @@ _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 @njit(cache=True)
 def log_ndtr(x):
     """ln Phi(x) for a float x (Phi the standard normal CDF), accurate in both tails."""
+    if x > 8.3:  # ln Phi = -Phi(-x) to 1e-33, and |Phi(-8.3)| < 5.2e-17: 0 to double precision
+        return 0.0
     if x > 6.0:
         return math.log1p(-0.5 * math.erfc(x * _SQRT_HALF))
     if x > -20.0:
