@@ -144,12 +144,12 @@ def _compiled_versus_array(comp, pset, w, rng, args):
     """(e) the limits part, whole call, with the compiled kernel and with the array code."""
     from diskfield import steady
 
-    if steady._compiled is None:
+    if steady._kernel() is None:
         print("\n(e) numba not importable: the array code is in use")
         return
     print(f"\n(e) body-shared spin with upper limits, {w} walkers: compiled kernel vs array code"
           " (whole log_likelihood call)")
-    kernel = steady._compiled
+    kernel = steady._kernel()
     for prof in ("smooth", "ring", "two-ring"):
         model = build_model(comp, profile=prof, priors=pset)
         theta = _walkers(model, w, rng)

@@ -28,10 +28,21 @@ from scipy import special
 from . import quadrature as quad
 from .recording import LN_SQRT_2PI, emg_logpdf, emg_logsf
 
-try:  # the compiled kernel of the same rule; the array code below is the fallback
-    from . import _steady_jit as _compiled
-except Exception:  # pragma: no cover - numba missing, or no writable place for its cache
-    _compiled = None
+#: The compiled kernel of the same rule (:mod:`diskfield._steady_jit`), imported on first use
+#: (numba's import costs ~0.3 s that commands without a likelihood need not pay); None: the
+#: array code below (numba missing or its cache unwritable; tests set it to compare both).
+_compiled = ...
+
+
+def _kernel():
+    global _compiled
+    if _compiled is ...:
+        try:
+            from . import _steady_jit as module
+        except Exception:  # pragma: no cover - numba is a declared dependency
+            module = None
+        _compiled = module
+    return _compiled
 
 __all__ = ["body_spin", "no_spin", "record_spin", "body_spin_with_limits", "compile_kernels"]
 
@@ -114,7 +125,7 @@ def body_spin_with_limits(phi, wi, gi, gx, b, var, stats, n_nodes):
     """
     z, vl, lim, zbar, v, ln_k = _subset(b, var, stats, gx)
     has_det = np.isfinite(v)
-    if _compiled is not None:
+    if _kernel() is not None:
         return _compiled_reads(phi, wi, gi, gx, b, (z, vl, lim, zbar, v, ln_k, has_det),
                                n_nodes)
     args = (z, vl, lim, zbar, v, ln_k, has_det)
@@ -146,7 +157,7 @@ def compile_kernels() -> None:
     Worker processes forked afterwards inherit the compiled code instead of each compiling
     it (or racing to write the cache) on first use. No-op without numba.
     """
-    if _compiled is None:
+    if _kernel() is None:
         return
     b = types.SimpleNamespace(z=np.array([[1.0, 0.5]]), lim=np.array([[False, True]]))
     var = np.full((1, 1, 2), 0.1)
@@ -167,7 +178,7 @@ def _compiled_reads(phi, wi, gi, gx, b, args, n_nodes):
     rules = [quad.gauss_legendre_unit(k) for k in (n_nodes, 3, 6, _SUB_NODES)]
     consts = np.array([_INACTIVE, _SKIP_ABOVE_PEAK, _SUB_RANGE, _NEGLIGIBLE, _DILUTED,
                        _GENTLE])
-    return _compiled.body_spin_with_limits(
+    return _kernel().body_spin_with_limits(
         np.ascontiguousarray(phi, float), wi * g + pos[gi], flat(z[None]), flat(vl),
         flat(lim[None]), flat(has_det), flat(np.where(has_det, zbar, 0.0)),
         flat(np.where(has_det, v, 1.0)), flat(np.where(has_det, ln_k, 0.0)),
