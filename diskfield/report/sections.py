@@ -104,12 +104,18 @@ def _tau_max(fit: dict) -> float:
     return max(finite) if finite else math.nan
 
 
-def _num(x, fmt: str) -> str:
+def _value(x) -> float | None:
+    """``x`` as a float, or None when it is missing, not a number or NaN (an empty cell)."""
     try:
         x = float(x)
     except (TypeError, ValueError):
-        return ""
-    return "" if math.isnan(x) else format(x, fmt)
+        return None
+    return None if math.isnan(x) else x
+
+
+def _num(x, fmt: str) -> str:
+    v = _value(x)
+    return "" if v is None else format(v, fmt)
 
 
 def convergence_table(run, diffs: dict) -> TextTable:
@@ -166,11 +172,8 @@ def _loo_refits(run) -> dict:
 
 
 def _decimals(x, decimals: int) -> str:
-    try:
-        x = float(x)
-    except (TypeError, ValueError):
-        return ""
-    return "" if math.isnan(x) else round_to_decimals(x, decimals)
+    v = _value(x)
+    return "" if v is None else round_to_decimals(v, decimals)
 
 
 def loo_refit_table(refits: dict) -> TextTable:
