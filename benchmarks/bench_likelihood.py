@@ -102,6 +102,9 @@ def main(argv=None):
                     help="calls per timing for time-dependent envelopes (seconds per call)")
     ap.add_argument("--spins", default="body",
                     help="comma-separated spin modes timed in (a) (body, record, none)")
+    ap.add_argument("--envelopes", default=",".join(available_envelopes()),
+                    help="comma-separated envelopes timed in (a) (default: all)")
+    ap.add_argument("--only-a", action="store_true", help="print table (a)/(b) only")
     args = ap.parse_args(argv)
     rng = np.random.default_rng(20261202)
     pset = load_priors()
@@ -114,10 +117,12 @@ def main(argv=None):
           f"{args.aged_repeat} call(s), one round)")
     print(f"{'profile':12s} {'envelope':12s} {'spin':6s} {'(a) ms':>9s} {'1 walker':>9s} "
           f"{'K_r':>5s} {'K_t':>5s} {'(b) ms':>9s} {'(a)/(b)':>8s}")
-    for env in available_envelopes():
+    for env in args.envelopes.split(","):
         for spin in args.spins.split(","):
             for prof in available_profiles():
                 _row(comp, pset, prof, env, spin, w, rng, args)
+    if args.only_a:
+        return
     model = build_model(comp, profile="ring", priors=pset)
     theta = _walkers(model, 1, rng)
     lat = ([b.sample(rng) for b in model._bodies.priors], rng.exponential(1.0, len(comp.bodies)))

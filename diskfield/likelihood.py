@@ -31,9 +31,45 @@ from .ordering import label_ordering
 from .priorspec import Uniform
 from .recording import record_terms
 
-__all__ = ["SPIN_MODES", "Model", "build_model"]
+__all__ = ["SPIN_MODES", "Model", "build_model", "compile_kernels"]
 
 SPIN_MODES = ("body", "record", "none")
+
+#: The compiled distance rule (:mod:`diskfield._rule_jit`), imported on first use like the
+#: limits kernel of :mod:`diskfield.steady`; None: the array code below (numba missing, or
+#: tests comparing both).
+_rule_compiled = ...
+
+
+def _rule_kernel():
+    global _rule_compiled
+    if _rule_compiled is ...:
+        try:
+            from . import _rule_jit as module
+        except Exception:  # pragma: no cover - numba is a declared dependency
+            module = None
+        _rule_compiled = module
+    return _rule_compiled
+
+
+def compile_kernels() -> None:
+    """Compile (or load from numba's cache) every compiled kernel of the likelihood now.
+
+    Worker processes forked afterwards inherit the compiled code instead of each compiling
+    it (or racing to write numba's cache) on first use. No-op without numba.
+    """
+    steady.compile_kernels()
+    kernel = _rule_kernel()
+    if kernel is None:
+        return
+    one = np.ones(1)
+    for n_rings, has_break in ((0, False), (1, False), (2, False), (0, True)):
+        form = np.array([[0.0, 1.0, 2.0, 1.0, 0.5, 2.0, 0.3, 0.5, 4.0, 0.3]])
+        kernel.steady_nodes(form, n_rings, has_break, 1e-9, np.zeros((1, 1)), one[:, None],
+                            0.5 * one, 4.0 * one, np.array([[0.5, 2.0, 4.0]]),
+                            np.array([0.5, 4.0]), np.linspace(-6, 6, 5), np.zeros(1),
+                            np.array([1.0, 3.0]), np.array([0.5]), np.zeros(1), 2)
+
 
 #: Floor on a record's total log variance: a limit without stated error and without
 #: calibration terms has only σ_int, whose prior reaches 0 (numerical convention).
@@ -120,6 +156,7 @@ class Model:
         self._group_priors, self._prior_group = _prior_groups(self._bodies.priors)
         self._ages = _age_priors(comp, priorset) if envelope.time_dependent else None
         self._obliquity = getattr(priorset, "spin_obliquity", None)
+        self._fixed_scout = _fixed_scout(self._bodies, self.settings)
         self.config = {"profile": profile.name, "envelope": envelope.name, "spin": spin,
                        "prior_files": [str(f) for f in getattr(priorset, "files", ())],
                        "label_ordering": self.ordering.describe()}
@@ -294,7 +331,7 @@ class Model:
         if not self.envelope.time_dependent:
             r, logw = quad.panel_rule(self._setup(p)[3], self.settings.panel_nodes)
             out = np.full(r.shape, -np.inf)
-            out[np.isfinite(logw)] = self._steady_terms(p)[1]
+            out[np.isfinite(logw)] = self._steady_terms(p, compiled=False)[1]
             return r, out
         var, stats, ages, breaks = self._setup(p)
         r, logw = quad.panel_rule(breaks, self.settings.panel_nodes)
@@ -303,12 +340,16 @@ class Model:
         gi = np.broadcast_to(np.arange(self.n_bodies)[:, None], r.shape)
         return r, logw + self._log_distance_prior(r, gi) + log_f
 
-    def _steady_terms(self, p):
+    def _steady_terms(self, p, compiled=True):
         """Steady envelope: the distance rule's nodes of positive weight only, flat.
 
         Zero-width panels (unused crossing slots, breaks clipped to a support, ring breaks
         outside a body's support: over half the panels of a ring) carry no weight and are not
         evaluated. Nodes are ordered by walker, body, panel, node (the dense rule's order).
+
+        With ``compiled`` and a profile that declares its power-law form, the rule and ln R
+        at the nodes come from the compiled kernel (:mod:`diskfield._rule_jit`: the same rule,
+        equal to round-off); ``keep`` is then None.
 
         Returns
         -------
@@ -319,7 +360,19 @@ class Model:
         keep : ndarray of bool, shape (W, G, B - 1)
             Panels of positive width.
         """
-        b, n = self._bodies, self.settings.panel_nodes
+        b = self._bodies
+        if compiled and self.profile.power_law_form is not None and _rule_kernel() is not None:
+            var, stats, r, logw, phi, wi, gi = self._compiled_nodes(p)
+            keep = None
+        else:
+            var, stats, r, logw, phi, wi, gi, keep = self._array_nodes(p)
+        terms = (logw + self._log_distance_prior(r, gi)
+                 + self._log_integrand(phi, b, var, stats, None, p, at=(wi, gi)))
+        return r, terms, wi, gi, keep
+
+    def _array_nodes(self, p):
+        """The steady rule's nodes in array code (any profile)."""
+        n = self.settings.panel_nodes
         var, stats, _, breaks = self._setup(p)
         h = np.diff(breaks, axis=-1)
         keep = h > 0
@@ -329,10 +382,26 @@ class Model:
         r = (breaks[..., :-1][keep][:, None] + hk * x).ravel()
         logw = (np.log(hk) + np.log(w)).ravel()
         wi, gi = np.repeat(wi, n), np.repeat(gi, n)
-        phi = self._log_field_at(p, r, wi)
-        terms = (logw + self._log_distance_prior(r, gi)
-                 + self._log_integrand(phi, b, var, stats, None, p, at=(wi, gi)))
-        return r, terms, wi, gi, keep
+        return var, stats, r, logw, self._log_field_at(p, r, wi), wi, gi, keep
+
+    def _compiled_nodes(self, p):
+        """The steady rule's nodes through the compiled kernel (profiles with a power-law
+        form): the same rule as :meth:`_distance_rule` and :meth:`_array_nodes`."""
+        from .profiles.ring import MIN_RING_FACTOR
+
+        b, s = self._bodies, self.settings
+        var = np.maximum(b.var_fixed + p["intrinsic_scatter"][:, None, None] ** 2, _MIN_VAR)
+        stats = _detection_stats(b.z, var, b.det)
+        level, scale = self._level(b, var, stats, None)
+        coef, n_rings, has_break = _form_rows(self.profile.power_law_form(p), len(level))
+        base = b.lo[:, None] + (b.hi - b.lo)[:, None] * np.linspace(0, 1, s.base_panels + 1)
+        x, w = quad.gauss_legendre_unit(s.panel_nodes)
+        r, logw, phi, wi, gi = _rule_kernel().steady_nodes(
+            coef, n_rings, has_break, MIN_RING_FACTOR, np.ascontiguousarray(level),
+            np.ascontiguousarray(scale), b.lo, b.hi, base, self._fixed_scout,
+            np.linspace(-6.0, 6.0, s.ring_scout), _FEATURE_OFFSETS,
+            np.asarray(s.grade_factors, float), x, np.log(w), s.max_crossings)
+        return var, stats, r, logw, phi, wi, gi
 
     def _log_field_at(self, p, r, wi):
         """ln R at flat distances ``r`` (N,) of walkers ``wi`` (N,).
@@ -392,7 +461,8 @@ class Model:
         phi_s = self.profile.log_field(scout, _expand(p, 1))
         cross, slope, found = _crossings(self.profile, p, scout, phi_s, level, b,
                                          s.max_crossings)
-        width = scale[..., None] / np.maximum(np.abs(slope), 1e-12)
+        # an unused crossing slot gets zero width: its graded breaks all sit at lo
+        width = np.where(found, scale[..., None] / np.maximum(np.abs(slope), 1e-12), 0.0)
         # the closest approach of ln R to the level is a crossing when there is one; without
         # one it is where the integrand peaks (a Gaussian tail): it takes the first slot
         edge, edge_width = _approach_point(self.profile, p, scout, phi_s, level, scale, b)
@@ -504,10 +574,37 @@ def _pad_bodies(comp, terms, priors, spin):
 
 
 # ---------------------------------------------------------------------- node placement
+#: Breakpoints across a ring, in ring widths either side of its centre (numerical convention).
+_FEATURE_OFFSETS = np.array([-6.0, -3.0, -1.5, 0.0, 1.5, 3.0, 6.0])
+
+
+def _form_rows(form, n_walkers):
+    """Pack a :class:`~diskfield.profiles.base.PowerLawForm` into the kernel's (W, 10) rows."""
+    rings = tuple(form.rings)
+    if len(rings) > 2:
+        raise ValueError("the compiled rule takes at most two rings in a PowerLawForm")
+    has_break = form.break_radius is not None
+    coef = np.zeros((n_walkers, 10))
+    coef[:, 0], coef[:, 1] = form.log_norm, form.index
+    if has_break:
+        coef[:, 2], coef[:, 3] = form.break_radius, form.index_outer
+    for k, ring in enumerate(rings):
+        coef[:, 4 + 3 * k:7 + 3 * k] = np.column_stack(ring)
+    return coef, len(rings), has_break
+
+
+def _fixed_scout(b, s):
+    """Scout points shared by every walker: log-spaced over all supports, every support end."""
+    # every distinct support end once: bodies of one reservoir share theirs, so the grid
+    # (and the (W, G, N) crossing search on it) does not grow with the number of bodies
+    return np.unique(np.concatenate([np.geomspace(b.lo.min(), b.hi.max(), s.scout_nodes),
+                                     b.lo, b.hi]))
+
+
 def _feature_breaks(p, profile):
     """Breakpoints on the profile's own features (rings: r0 + w x offsets; breaks), (W, F)."""
     names = set(profile.parameter_names)
-    offsets = np.array([-6.0, -3.0, -1.5, 0.0, 1.5, 3.0, 6.0])
+    offsets = _FEATURE_OFFSETS
     cols = []
     for prefix in ("ring", "ring2"):
         if f"{prefix}_radius" in names and f"{prefix}_width" in names:
@@ -520,9 +617,7 @@ def _feature_breaks(p, profile):
 def _scout_grid(b, features, p, s):
     """Increasing scout abscissae (W, N): log-spaced over all supports, plus feature points."""
     lo, hi = b.lo.min(), b.hi.max()
-    # every distinct support end once: bodies of one reservoir share theirs, so the grid
-    # (and the (W, G, N) crossing search on it) does not grow with the number of bodies
-    fixed = np.unique(np.concatenate([np.geomspace(lo, hi, s.scout_nodes), b.lo, b.hi]))
+    fixed = _fixed_scout(b, s)
     pts = [np.broadcast_to(fixed, (len(p["intrinsic_scatter"]), len(fixed)))]
     for prefix in ("ring", "ring2"):
         if f"{prefix}_radius" in p:

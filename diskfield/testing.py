@@ -204,6 +204,28 @@ def _check_symmetry(comp, x, cols, out, fail) -> None:
                 return
 
 
+def _check_power_law_form(comp, x, cols, out, fail) -> None:
+    """A declared power-law form gives the profile's own ln R (the compiled steady likelihood
+    evaluates the form, :class:`~diskfield.profiles.base.PowerLawForm`)."""
+    form_of = getattr(comp, "power_law_form", None)
+    if form_of is None or x.ndim != 2:
+        return
+    try:
+        form = form_of({n: v.reshape(-1) for n, v in cols.items()})
+        if len(tuple(form.rings)) > 2 or ((form.break_radius is None)
+                                          != (form.index_outer is None)):
+            fail("power_law_form: at most two rings, and break_radius with index_outer "
+                 "(both or neither)")
+            return
+        again = form.log_field(x)
+    except Exception as exc:  # report, do not crash the conformance run
+        fail(f"power_law_form raised {type(exc).__name__}: {exc}")
+        return
+    if again.shape != out.shape or not np.allclose(again, out, rtol=1e-12, atol=1e-10):
+        worst = float(np.max(np.abs(again - out))) if again.shape == out.shape else np.nan
+        fail(f"power_law_form differs from log_field (largest difference {worst:.3g} in ln R)")
+
+
 def _check_function(comp, priors, rng, fail) -> None:
     cols = _draws(priors, rng) if priors else {}
     n = len(next(iter(cols.values()))) if cols else _N_DRAWS
@@ -219,6 +241,7 @@ def _check_function(comp, priors, rng, fail) -> None:
             _check_purity(comp, x, cols, out, fail)
             _check_per_walker(comp, x, cols, out, fail)
             _check_symmetry(comp, x, cols, out, fail)
+            _check_power_law_form(comp, x, cols, out, fail)
     _check_normalisation(comp, cols, fail)
 
 
@@ -245,7 +268,7 @@ def check_profile(component, priors=None, seed: int = 20240611) -> None:
         walker), pure (same output, inputs not mutated), finite and never NaN over random
         draws from the priors and at their support edges; envelopes with ln T(0) = 0;
         declared exchangeable groups made of declared parameters, whose swap leaves the
-        function unchanged.
+        function unchanged; a declared ``power_law_form`` equal to ``log_field``.
     """
     failures: list[str] = []
     fail = failures.append

@@ -74,7 +74,7 @@ def run_tasks(tasks, jobs: int, on_done=None) -> list:
     tasks = list(tasks)
     if jobs <= 1 or len(tasks) <= 1 or "fork" not in multiprocessing.get_all_start_methods():
         return [_run_here(i, t, on_done) for i, t in enumerate(tasks)]
-    from .steady import compile_kernels
+    from .likelihood import compile_kernels
 
     compile_kernels()  # once here: the forked workers inherit the compiled code
     global _TASKS

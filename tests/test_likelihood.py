@@ -453,3 +453,99 @@ def test_aged_upper_limit_without_spin_matches_adaptive_quadrature(pset):
 
     ref = np.log(integrate.quad(inner, 1.5, 2.5, limit=200)[0])   # uniform prior density 1/AU
     assert model.log_likelihood(theta) == pytest.approx(ref, abs=0.01)
+
+
+# ---------------------------------------------------------------------- compiled distance rule
+def _demo_model(profile, pset, spin="body"):
+    from diskfield.records import read_compilation
+    from diskfield.resources import demo_dir
+
+    return build_model(read_compilation(demo_dir() / "demo_compilation.ecsv"), profile,
+                       spin=spin, priors=pset)
+
+
+@pytest.mark.parametrize("profile", ["smooth", "ring", "two-ring", "broken", "accretion",
+                                     "accretion-wind"])
+def test_compiled_rule_follows_the_array_rule(pset, profile):
+    """The compiled steady rule (diskfield._rule_jit) places the same panels as the array
+    rule and gives the same per-body log-likelihood (common practice, no source: two
+    implementations of one rule held equal). A refinement step's sign test can fall the
+    other way at round-off, moving a node by ~1e-6 of its value, so the likelihoods are
+    compared at 1e-8 nat rather than bitwise."""
+    import diskfield.likelihood as lk
+
+    if lk._rule_kernel() is None:
+        pytest.skip("numba not importable")
+    model = _demo_model(profile, pset)
+    rng = np.random.default_rng(7)
+    theta = np.column_stack([p.sample(rng, 48) for p in model.priors])
+    p = model.params(theta[model._in_support(theta)])
+    arr, comp = model._array_nodes(p), model._compiled_nodes(p)
+    assert len(arr[2]) == len(comp[2]) > 0
+    np.testing.assert_array_equal(arr[5], comp[5])          # walker of each node
+    np.testing.assert_array_equal(arr[6], comp[6])          # body of each node
+    np.testing.assert_allclose(comp[2], arr[2], rtol=1e-5)  # nodes [AU]
+    np.testing.assert_allclose(comp[4], arr[4], rtol=0, atol=1e-5)
+    ll_compiled = model.log_likelihood_pointwise(theta)
+    saved = lk._rule_compiled
+    lk._rule_compiled = None
+    try:
+        ll_array = model.log_likelihood_pointwise(theta)
+    finally:
+        lk._rule_compiled = saved
+    assert np.array_equal(np.isfinite(ll_array), np.isfinite(ll_compiled))
+    ok = np.isfinite(ll_array)
+    np.testing.assert_allclose(ll_compiled[ok], ll_array[ok], rtol=0, atol=1e-8)
+
+
+@pytest.mark.parametrize("profile", ["smooth", "two-ring", "broken", "accretion"])
+def test_compiled_profile_equals_the_declared_form(pset, profile):
+    """The kernel's ln R equals the profile's PowerLawForm in array code, which check_profile
+    holds equal to log_field (common practice, no source)."""
+    import diskfield.likelihood as lk
+    from diskfield.profiles.ring import MIN_RING_FACTOR
+
+    kernel = lk._rule_kernel()
+    if kernel is None:
+        pytest.skip("numba not importable")
+    model = _demo_model(profile, pset)
+    rng = np.random.default_rng(3)
+    theta = np.column_stack([p.sample(rng, 32) for p in model.priors])
+    p = model.params(theta)
+    r = rng.uniform(0.3, 30.0, size=(32, 40))
+    form = model.profile.power_law_form(p)
+    coef, n_rings, has_break = lk._form_rows(form, 32)
+    got = kernel.log_field_rows(r, coef, n_rings, has_break, MIN_RING_FACTOR)
+    np.testing.assert_allclose(got, form.log_field(r), rtol=1e-13, atol=1e-13)
+    np.testing.assert_allclose(got, model.profile.log_field(
+        r, {k: v[:, None] for k, v in p.items()}), rtol=1e-12, atol=1e-12)
+
+
+def test_profile_without_a_form_takes_the_array_rule(pset):
+    """A plug-in without ``power_law_form`` is evaluated through ``log_field`` (array rule)
+    and gets the same likelihood as the shipped profile with the form."""
+    from diskfield.likelihood import Model
+    from diskfield.profiles import get_envelope, get_profile
+
+    shipped = _demo_model("ring", pset)
+    plain = dataclasses.replace(get_profile("ring"), power_law_form=None)
+    plug = Model(shipped.compilation, plain, get_envelope("steady"), "body", pset)
+    rng = np.random.default_rng(11)
+    theta = np.column_stack([p.sample(rng, 16) for p in shipped.priors])
+    assert plug._steady_terms(plug.params(theta))[4] is not None     # the array rule ran
+    a, b = plug.log_likelihood_pointwise(theta), shipped.log_likelihood_pointwise(theta)
+    ok = np.isfinite(a)
+    np.testing.assert_allclose(b[ok], a[ok], rtol=0, atol=1e-8)
+
+
+def test_check_profile_rejects_a_form_that_differs_from_log_field():
+    """check_profile holds a declared power-law form to the profile's own log_field."""
+    from diskfield.profiles import get_profile
+    from diskfield.profiles.base import PowerLawForm
+    from diskfield.testing import check_profile
+
+    wrong = dataclasses.replace(
+        get_profile("smooth"),
+        power_law_form=lambda p: PowerLawForm(np.log(p["field_1au"]), 1.01 * p["power_index"]))
+    with pytest.raises(AssertionError, match="power_law_form differs from log_field"):
+        check_profile(wrong)

@@ -18,7 +18,7 @@ from __future__ import annotations
 import numpy as np
 
 from .. import physics
-from .base import Parameter, RadialProfile
+from .base import Parameter, PowerLawForm, RadialProfile
 
 __all__ = ["ACCRETION", "ACCRETION_WIND", "MRI_INDEX", "WIND_INDEX"]
 
@@ -70,6 +70,18 @@ def _log_field_wind(r_au, p):
             + np.log(p["geometry_factor"]) - WIND_INDEX * np.log(r_au))
 
 
+def _form_mri(p):
+    return PowerLawForm(_LN_MRI_1AU + 0.5 * np.log(p["accretion_rate"])
+                        - 0.5 * np.log(p["stress_efficiency"]) + np.log(p["geometry_factor"]),
+                        np.full(np.shape(p["accretion_rate"]), MRI_INDEX))
+
+
+def _form_wind(p):
+    return PowerLawForm(_LN_WIND_1AU + 0.5 * np.log(p["wind_fraction"] * p["accretion_rate"])
+                        + np.log(p["geometry_factor"]),
+                        np.full(np.shape(p["accretion_rate"]), WIND_INDEX))
+
+
 ACCRETION = RadialProfile(
     name="accretion",
     description="field of an MRI-type (Maxwell-stress) accreting disk, MMSN thickness",
@@ -78,6 +90,7 @@ ACCRETION = RadialProfile(
     formula=("R(r) = geometry_factor * sqrt(mu0 Omega(r) accretion_rate / "
              "(4 pi h(r) stress_efficiency)),  Omega = sqrt(G M_sun / r^3), "
              "h/r = 0.0335 (r / 1 AU)^(1/4)  (~ r^(-11/8))"),
+    power_law_form=_form_mri,
 )
 
 ACCRETION_WIND = RadialProfile(
@@ -87,4 +100,5 @@ ACCRETION_WIND = RadialProfile(
     log_field=_log_field_wind,
     formula=("R(r) = geometry_factor * sqrt(mu0 wind_fraction accretion_rate Omega(r) / "
              "(8 pi r)),  Omega = sqrt(G M_sun / r^3)  (~ r^(-5/4))"),
+    power_law_form=_form_wind,
 )

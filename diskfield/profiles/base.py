@@ -19,7 +19,7 @@ from typing import Any, Callable, Mapping
 
 import numpy as np
 
-__all__ = ["Parameter", "Exchangeable", "RadialProfile", "Envelope"]
+__all__ = ["Parameter", "Exchangeable", "PowerLawForm", "RadialProfile", "Envelope"]
 
 
 @dataclass(frozen=True)
@@ -102,6 +102,53 @@ class Exchangeable:
 
 
 @dataclass(frozen=True)
+class PowerLawForm:
+    """A profile written as a (broken) power law times Gaussian ring factors, per walker.
+
+    ``ln R(r) = log_norm - index ln min(r, r_b) - index_outer ln max(r / r_b, 1)
+    + sum_k ln(1 + A_k exp(-(r - r_k)^2 / (2 w_k^2)))`` (r, r_b, r_k, w_k in AU; without a
+    break the middle terms are ``- index ln r``), each ring factor floored at
+    ``MIN_RING_FACTOR`` as in :func:`diskfield.profiles.ring.log_ring_factor`.
+
+    A profile that declares this form (``RadialProfile.power_law_form``) lets the steady
+    likelihood place its distance rule and evaluate ln R in compiled code
+    (:mod:`diskfield._rule_jit`); ``log_field`` stays the definition, and
+    :func:`diskfield.testing.check_profile` checks that the two agree.
+
+    Attributes
+    ----------
+    log_norm, index : ndarray (W,)
+        ln(R / uT) at 1 AU before any ring factor (inner law), and the (inner) index.
+    rings : tuple of (amplitude, radius, width), each ndarray (W,)
+        At most two rings.
+    break_radius, index_outer : ndarray (W,) or None
+        Break radius [AU] and the index beyond it (both or neither).
+    """
+
+    log_norm: Any
+    index: Any
+    rings: tuple = ()
+    break_radius: Any = None
+    index_outer: Any = None
+
+    def log_field(self, r_au):
+        """ln(R / uT) of this form at distances ``r_au`` (W, K) [AU], in array code."""
+        from .ring import log_ring_factor
+
+        col = lambda a: np.asarray(a, float)[:, None]  # noqa: E731
+        ln_r = np.log(r_au)
+        if self.break_radius is None:
+            out = col(self.log_norm) - col(self.index) * ln_r
+        else:
+            ln_rb = np.log(col(self.break_radius))
+            out = (col(self.log_norm) - col(self.index) * np.minimum(ln_r, ln_rb)
+                   - col(self.index_outer) * np.maximum(ln_r - ln_rb, 0.0))
+        for amplitude, radius, width in self.rings:
+            out = out + log_ring_factor(r_au, col(amplitude), col(radius), col(width))
+        return out
+
+
+@dataclass(frozen=True)
 class RadialProfile:
     """A radial field profile plug-in.
 
@@ -117,6 +164,10 @@ class RadialProfile:
         The formula in plain text (shown by ``diskfield profiles`` and in reports).
     exchangeable : tuple of Exchangeable
         Parameter groups ``log_field`` treats symmetrically (empty: none).
+    power_law_form : callable or None
+        Optional ``power_law_form(p) -> PowerLawForm`` for parameters ``p`` of shape (W,): the
+        same profile in the form the compiled steady likelihood evaluates (None: the
+        likelihood calls ``log_field``, which is always correct, only slower).
     """
 
     name: str
@@ -126,6 +177,7 @@ class RadialProfile:
     formula: str = ""
     kind: str = "radial"
     exchangeable: tuple[Exchangeable, ...] = ()
+    power_law_form: Callable[[Mapping[str, np.ndarray]], PowerLawForm] | None = None
 
     @property
     def parameter_names(self) -> tuple[str, ...]:

@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .base import Parameter, RadialProfile
+from .base import Parameter, PowerLawForm, RadialProfile
 from .smooth import FIELD_1AU, POWER_INDEX
 
 __all__ = ["BROKEN"]
@@ -32,6 +32,11 @@ def _log_field(r_au, p):
     return np.log(p["field_1au"]) - p["power_index"] * inner - p["power_index_outer"] * outer
 
 
+def _form(p):
+    return PowerLawForm(np.log(p["field_1au"]), p["power_index"],
+                        break_radius=p["break_radius"], index_outer=p["power_index_outer"])
+
+
 BROKEN = RadialProfile(
     name="broken",
     description="broken power law: index power_index inside break_radius, "
@@ -40,4 +45,5 @@ BROKEN = RadialProfile(
     log_field=_log_field,
     formula=("R(r) = field_1au * (min(r, r_b) / 1 AU)^(-power_index) * "
              "(max(r, r_b) / r_b)^(-power_index_outer),  r_b = break_radius"),
+    power_law_form=_form,
 )

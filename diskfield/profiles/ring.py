@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .base import Exchangeable, Parameter, RadialProfile
+from .base import Exchangeable, Parameter, PowerLawForm, RadialProfile
 from .smooth import FIELD_1AU, POWER_INDEX, log_power_law
 
 __all__ = ["MIN_RING_FACTOR", "log_ring_factor", "ring_parameters", "RING", "TWO_RING"]
@@ -86,6 +86,19 @@ def _log_field_two_ring(r_au, p):
             + log_ring_factor(r_au, p["ring2_amplitude"], p["ring2_radius"], p["ring2_width"]))
 
 
+def _ring(p, prefix):
+    return (p[f"{prefix}_amplitude"], p[f"{prefix}_radius"], p[f"{prefix}_width"])
+
+
+def _form_ring(p):
+    return PowerLawForm(np.log(p["field_1au"]), p["power_index"], rings=(_ring(p, "ring"),))
+
+
+def _form_two_ring(p):
+    return PowerLawForm(np.log(p["field_1au"]), p["power_index"],
+                        rings=(_ring(p, "ring"), _ring(p, "ring2")))
+
+
 RING = RadialProfile(
     name="ring",
     description="power law times one Gaussian pressure-bump enhancement",
@@ -93,6 +106,7 @@ RING = RadialProfile(
     log_field=_log_field_ring,
     formula=("R(r) = field_1au * (r / 1 AU)^(-power_index) * (1 + ring_amplitude * "
              "exp(-(r - ring_radius)^2 / (2 ring_width^2)))"),
+    power_law_form=_form_ring,
 )
 
 TWO_RING = RadialProfile(
@@ -104,4 +118,5 @@ TWO_RING = RadialProfile(
              "(1 + ring2_amplitude * g2(r)),  g_k = exp(-(r - r_k)^2 / (2 w_k^2))"),
     exchangeable=(Exchangeable(("ring", "ring2"), ("amplitude", "radius", "width"), "radius",
                                ("inner", "outer")),),
+    power_law_form=_form_two_ring,
 )

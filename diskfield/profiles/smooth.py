@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .base import Parameter, RadialProfile
+from .base import Parameter, PowerLawForm, RadialProfile
 
 __all__ = ["FIELD_1AU", "POWER_INDEX", "SMOOTH", "log_power_law"]
 
@@ -43,10 +43,15 @@ def _log_field(r_au, p):
     return log_power_law(r_au, p["field_1au"], p["power_index"])
 
 
+def _form(p):
+    return PowerLawForm(np.log(p["field_1au"]), p["power_index"])
+
+
 SMOOTH = RadialProfile(
     name="smooth",
     description="smooth power-law disk field",
     parameters=(FIELD_1AU, POWER_INDEX),
     log_field=_log_field,
     formula="R(r) = field_1au * (r / 1 AU)^(-power_index)",
+    power_law_form=_form,
 )

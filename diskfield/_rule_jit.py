@@ -1,0 +1,258 @@
+"""Compiled (numba) form of the steady distance rule of :mod:`diskfield.likelihood`.
+
+For a profile that declares its power-law form (:class:`diskfield.profiles.base.PowerLawForm`:
+every shipped radial profile does), one pass per (walker, body) places the breakpoints of the
+composite Gauss–Legendre distance rule and evaluates ln R at the nodes of its panels of
+positive width. It is the rule of ``Model._distance_rule`` and ``Model._steady_terms`` step
+for step (scout grid, first crossings of the body's level refined by Illinois regula falsi,
+closest approach, the support end nearest the level, graded breaks, the profile's own
+features, base panels), so both give the same nodes, weights and ln R to round-off (tested).
+The array code spends most of its time in numpy call overhead on small (walkers x bodies x
+points) arrays; here there is none.
+
+The coefficient rows ``form`` (W, 10) hold, per walker:
+``[log_norm, index, break_radius, index_outer, A1, r1, w1, A2, r2, w2]`` (see
+``PowerLawForm``); ``n_rings`` (0-2) and ``has_break`` say which entries are used.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit
+
+@njit(cache=True)
+def log_field(r, c, n_rings, has_break, min_factor):
+    """ln R at one distance ``r`` [AU] for the coefficient row ``c``."""
+    lr = math.log(r)
+    if has_break:
+        lrb = math.log(c[2])
+        val = c[0] - c[1] * min(lr, lrb) - c[3] * max(lr - lrb, 0.0)
+    else:
+        val = c[0] - c[1] * lr
+    for k in range(n_rings):
+        z = (r - c[5 + 3 * k]) / c[6 + 3 * k]
+        a_g = c[4 + 3 * k] * math.exp(-0.5 * z * z)
+        val += math.log1p(max(a_g, min_factor - 1.0))
+    return val
+
+
+@njit(cache=True)
+def log_field_rows(r, form, n_rings, has_break, min_factor):
+    """ln R at distances ``r`` (W, K) [AU], row w with the coefficients ``form[w]``."""
+    out = np.empty(r.shape)
+    for w in range(r.shape[0]):
+        for k in range(r.shape[1]):
+            out[w, k] = log_field(r[w, k], form[w], n_rings, has_break, min_factor)
+    return out
+
+
+@njit(cache=True)
+def _clip(x, lo, hi):
+    return min(max(x, lo), hi)
+
+
+@njit(cache=True)
+def _secant(lo, hi, f_lo, f_hi):
+    den = f_lo - f_hi
+    t = f_lo / den if abs(den) > 0 else 0.5
+    return lo + _clip(t, 0.0, 1.0) * (hi - lo)
+
+
+@njit(cache=True)
+def _refine(lo, hi, f_lo, f_hi, c, n_rings, has_break, mf, level):
+    """Illinois regula falsi, three evaluations (``quadrature.refine_crossings``)."""
+    side = 0
+    for _ in range(3):
+        root = _secant(lo, hi, f_lo, f_hi)
+        f_root = log_field(root, c, n_rings, has_break, mf) - level
+        left = (f_root > 0) == (f_lo > 0)
+        if left:
+            lo, f_lo = root, f_root
+        else:
+            hi, f_hi = root, f_root
+        if left and side == 1:
+            f_hi = 0.5 * f_hi
+        if (not left) and side == -1:
+            f_lo = 0.5 * f_lo
+        side = 1 if left else -1
+    return _secant(lo, hi, f_lo, f_hi)
+
+
+@njit(cache=True)
+def _tail_width(centre, level, scale, c, n_rings, has_break, mf):
+    """``likelihood._tail_width`` at one point."""
+    h = 1e-4 * max(scale, 1e-3) * max(centre, 0.1)
+    p0 = log_field(centre - h, c, n_rings, has_break, mf)
+    p1 = log_field(centre, c, n_rings, has_break, mf)
+    p2 = log_field(centre + h, c, n_rings, has_break, mf)
+    d1 = (p2 - p0) / (2 * h)
+    d2 = (p2 - 2 * p1 + p0) / (h * h)
+    off = p1 - level
+    v = scale * scale
+    g1 = abs(off * d1) / v
+    g2 = abs(d1 * d1 + off * d2) / v
+    return min(scale / max(abs(d1), 1e-12),
+               min(1.0 / max(g1, 1e-12), 1.0 / math.sqrt(max(g2, 1e-24))))
+
+
+@njit(cache=True)
+def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixed,
+                 ring_u, offsets, grades, gl_x, gl_logw, max_count):
+    """Nodes of the distance rule with positive weight, flat, ordered by walker, body, panel.
+
+    Parameters
+    ----------
+    form : ndarray (W, 10)
+        Power-law-form coefficients per walker.
+    level, scale : ndarray (W, G)
+        ln-field level of each body's integrand and its width in ln R.
+    lo, hi : ndarray (G,)
+        Distance supports [AU]; ``base`` (G, P + 1) the base panels' breaks.
+    fixed : ndarray (S,)
+        Sorted scout points shared by all walkers (log-spaced plus every support end).
+    ring_u, offsets : ndarray
+        Scout points and feature breaks across each ring, in ring widths.
+    grades : ndarray (F,)
+        Graded-break factors (e.g. 1, 3, 9).
+    gl_x, gl_logw : ndarray (n,)
+        Gauss–Legendre nodes on [0, 1] and ln of their weights.
+    max_count : int
+        Crossing slots per body.
+
+    Returns
+    -------
+    r, logw, phi : ndarray (N,)
+        Nodes [AU], ln weights, ln R there.
+    wi, gi : ndarray of int (N,)
+        Walker and body of each node.
+    """
+    n_w, n_g = level.shape
+    n_f = grades.shape[0]
+    n_graded = 2 * n_f + 1
+    sym = np.empty(n_graded)
+    for i in range(n_f):
+        sym[i] = -grades[n_f - 1 - i]
+        sym[n_f + 1 + i] = grades[i]
+    sym[n_f] = 0.0
+    n_feat = offsets.shape[0] * n_rings + (1 if has_break else 0)
+    n_brk = base.shape[1] + n_graded * max_count + n_f + n_feat
+    n_scout = fixed.shape[0] + ring_u.shape[0] * n_rings + (1 if has_break else 0)
+    n = gl_x.shape[0]
+    cap = n_w * n_g * (n_brk - 1) * n
+    r_out = np.empty(cap)
+    lw_out = np.empty(cap)
+    phi_out = np.empty(cap)
+    wi_out = np.empty(cap, np.int64)
+    gi_out = np.empty(cap, np.int64)
+    r_min, r_max = lo.min(), hi.max()
+    scout = np.empty(n_scout)
+    phi_s = np.empty(n_scout)
+    feat = np.empty(max(n_feat, 1))
+    brk = np.empty(n_brk)
+    cross = np.empty(max_count)
+    width = np.empty(max_count)
+    found = np.empty(max_count, np.bool_)
+    pos = 0
+    for w in range(n_w):
+        c = form[w]
+        # scout grid and the profile's features (``_scout_grid``, ``_feature_breaks``)
+        m = 0
+        for i in range(fixed.shape[0]):
+            scout[m] = fixed[i]
+            m += 1
+        k_f = 0
+        for k in range(n_rings):
+            r0, wd = c[5 + 3 * k], c[6 + 3 * k]
+            for i in range(ring_u.shape[0]):
+                scout[m] = r0 + wd * ring_u[i]
+                m += 1
+            for i in range(offsets.shape[0]):
+                feat[k_f] = r0 + wd * offsets[i]
+                k_f += 1
+        if has_break:
+            scout[m] = c[2]
+            feat[k_f] = c[2]
+        for i in range(n_scout):
+            scout[i] = _clip(scout[i], r_min, r_max)
+        scout.sort()
+        for i in range(n_scout):
+            phi_s[i] = log_field(scout[i], c, n_rings, has_break, min_factor)
+        for g in range(n_g):
+            lev, sc, a_lo, a_hi = level[w, g], scale[w, g], lo[g], hi[g]
+            # first crossings of the level inside the support (``quadrature.first_crossings``)
+            n_found = 0
+            for i in range(n_scout - 1):
+                if n_found == max_count:
+                    break
+                mid = 0.5 * (scout[i + 1] + scout[i])
+                if not (mid > a_lo and mid < a_hi):
+                    continue
+                f0, f1 = phi_s[i] - lev, phi_s[i + 1] - lev
+                if (f0 > 0) != (f1 > 0):
+                    x0, x1 = scout[i], scout[i + 1]
+                    cross[n_found] = _refine(x0, x1, f0, f1, c, n_rings, has_break,
+                                             min_factor, lev)
+                    slope = (f1 - f0) / max(x1 - x0, 1e-300)
+                    width[n_found] = sc / max(abs(slope), 1e-12)
+                    found[n_found] = True
+                    n_found += 1
+            for k in range(n_found, max_count):
+                found[k] = False
+                cross[k] = a_lo
+                width[k] = 0.0            # unused slot: its graded breaks all sit at lo
+            if not found[0]:
+                # closest approach on the scout grid (``_approach_point``)
+                best, kb = np.inf, 0
+                for i in range(n_scout):
+                    if scout[i] >= a_lo and scout[i] <= a_hi:
+                        d = abs(phi_s[i] - lev)
+                        if d < best:
+                            best, kb = d, i
+                km, kp = max(kb - 1, 0), min(kb + 1, n_scout - 1)
+                r0, rm, rp = scout[kb], scout[km], scout[kp]
+                f0, fm, fp = phi_s[kb], phi_s[km], phi_s[kp]
+                num = (r0 - rm) ** 2 * (f0 - fp) - (r0 - rp) ** 2 * (f0 - fm)
+                den = (r0 - rm) * (f0 - fp) - (r0 - rp) * (f0 - fm)
+                vertex = r0 - 0.5 * num / (den if abs(den) > 0 else np.inf)
+                centre = min(max(vertex, max(rm, a_lo)), min(rp, a_hi))
+                cross[0] = centre
+                width[0] = _tail_width(centre, lev, sc, c, n_rings, has_break, min_factor)
+            # breaks: base, graded around each crossing, the nearest support end, features
+            m = 0
+            for i in range(base.shape[1]):
+                brk[m] = base[g, i]
+                m += 1
+            for k in range(max_count):
+                for i in range(n_graded):
+                    brk[m] = _clip(cross[k] + width[k] * sym[i], a_lo, a_hi)
+                    m += 1
+            ph_lo = log_field(a_lo, c, n_rings, has_break, min_factor)
+            ph_hi = log_field(a_hi, c, n_rings, has_break, min_factor)
+            use_lo = abs(ph_lo - lev) <= abs(ph_hi - lev)
+            edge = a_lo if use_lo else a_hi
+            inward = 1.0 if use_lo else -1.0
+            e_w = _tail_width(_clip(edge + 1e-9 * inward, a_lo, a_hi), lev, sc, c, n_rings,
+                              has_break, min_factor)
+            for i in range(n_f):
+                brk[m] = _clip(edge + (inward * e_w) * grades[i], a_lo, a_hi)
+                m += 1
+            for i in range(n_feat):
+                brk[m] = _clip(feat[i], a_lo, a_hi)
+                m += 1
+            brk.sort()
+            # Gauss–Legendre nodes of the panels of positive width
+            for i in range(n_brk - 1):
+                h = brk[i + 1] - brk[i]
+                if not h > 0:
+                    continue
+                lh = math.log(h)
+                for j in range(n):
+                    x = brk[i] + h * gl_x[j]
+                    r_out[pos] = x
+                    lw_out[pos] = lh + gl_logw[j]
+                    phi_out[pos] = log_field(x, c, n_rings, has_break, min_factor)
+                    wi_out[pos] = w
+                    gi_out[pos] = g
+                    pos += 1
+    return r_out[:pos], lw_out[:pos], phi_out[:pos], wi_out[:pos], gi_out[:pos]
