@@ -32,8 +32,11 @@ def log_field(r, c, n_rings, has_break, min_factor):
         val = c[0] - c[1] * lr
     for k in range(n_rings):
         z = (r - c[5 + 3 * k]) / c[6 + 3 * k]
-        a_g = c[4 + 3 * k] * math.exp(-0.5 * z * z)
-        val += math.log1p(max(a_g, min_factor - 1.0))
+        if z * z > 1491.0:
+            continue  # exp(-0.5 z^2) underflows to 0 below -745.2: the factor is exactly 1
+        a_g = max(c[4 + 3 * k] * math.exp(-0.5 * z * z), min_factor - 1.0)
+        # ln(1 + x) = x - x^2/2 + ...: x itself to double precision below 1e-17
+        val += a_g if abs(a_g) < 1e-17 else math.log1p(a_g)
     return val
 
 
@@ -223,7 +226,7 @@ def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, bas
             for i in range(base.shape[1]):
                 brk[m] = base[g, i]
                 m += 1
-            for k in range(max_count):
+            for k in range(max(n_found, 1)):   # unused slots would only add breaks at lo
                 for i in range(n_graded):
                     brk[m] = _clip(cross[k] + width[k] * sym[i], a_lo, a_hi)
                     m += 1
@@ -240,9 +243,9 @@ def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, bas
             for i in range(n_feat):
                 brk[m] = _clip(feat[i], a_lo, a_hi)
                 m += 1
-            brk.sort()
+            brk[:m].sort()
             # Gauss–Legendre nodes of the panels of positive width
-            for i in range(n_brk - 1):
+            for i in range(m - 1):
                 h = brk[i + 1] - brk[i]
                 if not h > 0:
                     continue
