@@ -156,7 +156,7 @@ class Model:
         self._group_priors, self._prior_group = _prior_groups(self._bodies.priors)
         self._ages = _age_priors(comp, priorset) if envelope.time_dependent else None
         self._obliquity = getattr(priorset, "spin_obliquity", None)
-        self._fixed_scout = _fixed_scout(self._bodies, self.settings)
+        self._rule_static = _rule_static(self._bodies, self.settings)
         self.config = {"profile": profile.name, "envelope": envelope.name, "spin": spin,
                        "prior_files": [str(f) for f in getattr(priorset, "files", ())],
                        "label_ordering": self.ordering.describe()}
@@ -394,13 +394,9 @@ class Model:
         stats = _detection_stats(b.z, var, b.det)
         level, scale = self._level(b, var, stats, None)
         coef, n_rings, has_break = _form_rows(self.profile.power_law_form(p), len(level))
-        base = b.lo[:, None] + (b.hi - b.lo)[:, None] * np.linspace(0, 1, s.base_panels + 1)
-        x, w = quad.gauss_legendre_unit(s.panel_nodes)
         r, logw, phi, wi, gi = _rule_kernel().steady_nodes(
             coef, n_rings, has_break, MIN_RING_FACTOR, np.ascontiguousarray(level),
-            np.ascontiguousarray(scale), b.lo, b.hi, base, self._fixed_scout,
-            np.linspace(-6.0, 6.0, s.ring_scout), _FEATURE_OFFSETS,
-            np.asarray(s.grade_factors, float), x, np.log(w), s.max_crossings)
+            np.ascontiguousarray(scale), *self._rule_static, s.max_crossings)
         return var, stats, r, logw, phi, wi, gi
 
     def _log_field_at(self, p, r, wi):
@@ -591,6 +587,18 @@ def _form_rows(form, n_walkers):
     for k, ring in enumerate(rings):
         coef[:, 4 + 3 * k:7 + 3 * k] = np.column_stack(ring)
     return coef, len(rings), has_break
+
+
+def _rule_static(b, s):
+    """The compiled rule's fixed inputs (lo, hi, base breaks, fixed scout, ring scout and
+    feature offsets, grade factors, Gauss–Legendre nodes and ln weights), each a writable
+    C-contiguous float array: numba compiles one specialisation per array layout, and
+    :func:`compile_kernels` compiles this one."""
+    x, w = quad.gauss_legendre_unit(s.panel_nodes)
+    base = b.lo[:, None] + (b.hi - b.lo)[:, None] * np.linspace(0, 1, s.base_panels + 1)
+    parts = (b.lo, b.hi, base, _fixed_scout(b, s), np.linspace(-6.0, 6.0, s.ring_scout),
+             _FEATURE_OFFSETS, s.grade_factors, x, np.log(w))
+    return tuple(np.array(a, dtype=float, order="C") for a in parts)
 
 
 def _fixed_scout(b, s):

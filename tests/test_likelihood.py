@@ -549,3 +549,21 @@ def test_check_profile_rejects_a_form_that_differs_from_log_field():
         power_law_form=lambda p: PowerLawForm(np.log(p["field_1au"]), 1.01 * p["power_index"]))
     with pytest.raises(AssertionError, match="power_law_form differs from log_field"):
         check_profile(wrong)
+
+
+def test_compile_kernels_compiles_the_specialisation_the_model_uses(pset):
+    """compile_kernels (run before forking workers) must compile the very specialisation a
+    model calls: numba compiles one per argument layout, and a second one would be compiled
+    again in every worker (common practice, no source)."""
+    import diskfield.likelihood as lk
+
+    kernel = lk._rule_kernel()
+    if kernel is None:
+        pytest.skip("numba not importable")
+    lk.compile_kernels()
+    before = set(kernel.steady_nodes.signatures)
+    for profile in ("smooth", "two-ring", "broken"):
+        model = _demo_model(profile, pset)
+        rng = np.random.default_rng(5)
+        model.log_likelihood(np.column_stack([p.sample(rng, 4) for p in model.priors]))
+    assert set(kernel.steady_nodes.signatures) == before
