@@ -566,7 +566,7 @@ def _preference(value, err, threshold, model, reference):
     return model if value > 0 else reference
 
 
-def _model_verdict(row, sens_rows, reference) -> dict:
+def _model_verdict(row, sens_rows, reference, loo_label="PSIS-LOO") -> dict:
     name, ln_b = row["model"], row["ln_bayes_factor"]
     two, two_err = 2 * ln_b, 2 * row["ln_bayes_factor_err"]
     ev_pref = None
@@ -585,10 +585,11 @@ def _model_verdict(row, sens_rows, reference) -> dict:
             "robust_to_prior_scale": robust, "decisive": decisive,
             "converged": bool(row["converged"]),
             "sentence": _model_sentence(name, reference, two, two_err, ev_pref, loo_pref,
-                                        row, decisive)}
+                                        row, decisive, loo_label)}
 
 
-def _model_sentence(name, reference, two, two_err, ev_pref, loo_pref, row, decisive) -> str:
+def _model_sentence(name, reference, two, two_err, ev_pref, loo_pref, row, decisive,
+                    loo_label="PSIS-LOO") -> str:
     if not np.isfinite(two):
         ev = "the evidence was not computed"
     elif ev_pref is None:
@@ -597,9 +598,9 @@ def _model_sentence(name, reference, two, two_err, ev_pref, loo_pref, row, decis
     else:
         ev = (f"the evidence favours {ev_pref} (2 ln B = {two:.1f} ± {two_err:.1f}, "
               f"{kass_raftery(two)} on the Kass & Raftery scale)")
-    loo = (f"PSIS-LOO cannot tell them apart (ΔELPD = {row['elpd_diff']:.1f} ± "
+    loo = (f"{loo_label} cannot tell them apart (ΔELPD = {row['elpd_diff']:.1f} ± "
            f"{row['elpd_diff_se']:.1f})" if loo_pref is None else
-           f"PSIS-LOO prefers {loo_pref} (ΔELPD = {row['elpd_diff']:.1f} ± "
+           f"{loo_label} prefers {loo_pref} (ΔELPD = {row['elpd_diff']:.1f} ± "
            f"{row['elpd_diff_se']:.1f})")
     both = "they agree" if ev_pref == loo_pref else "they DISAGREE"
     tail = "" if row["converged"] else f"; the {name} fit did NOT converge, so this is provisional"
@@ -618,7 +619,10 @@ def verdict(rows, sens, reference) -> dict:
         ``loo_favours``, ``agree``, ``robust_to_prior_scale``, ``decisive``, ``sentence``),
         ``ring_demanded`` (bool), ``unconverged`` (list) and the headline ``sentence``.
     """
-    per = {r["model"]: _model_verdict(r, sens, reference) for r in rows
+    # with --loo-refit, flagged bodies' elpd_i are exact refits, not PSIS estimates
+    refitted = any(str(r.get("note", "")).find("exact refit for bodies") >= 0 for r in rows)
+    label = "LOO (PSIS, exact refits for the flagged bodies)" if refitted else "PSIS-LOO"
+    per = {r["model"]: _model_verdict(r, sens, reference, label) for r in rows
            if r["model"] != reference}
     unconverged = [r["model"] for r in rows if not r["converged"]]
     ringed = {m: v for m, v in per.items() if m.startswith("ring") or m in NESTING}

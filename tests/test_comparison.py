@@ -72,6 +72,18 @@ def test_verdict_says_when_data_cannot_decide_and_flags_disagreement():
     assert "disagree" in v["sentence"].lower()
 
 
+def test_verdict_names_exact_refits_when_they_replaced_psis_values():
+    """With --loo-refit the flagged bodies' elpd_i are exact, so the sentence must not call
+    the whole difference a PSIS estimate."""
+    rows = [_row("smooth", 0, 0, 0, 0), _row("ring", 0.4, 0.2, 3.5, 1.0)]
+    assert "PSIS-LOO prefers ring" in verdict(rows, _sens("ring", [0.9, 0.4, -0.3]),
+                                              "smooth")["models"]["ring"]["sentence"]
+    rows[1]["note"] = "exact refit for bodies Body-C (Pareto k > 0.7)"
+    sentence = verdict(rows, _sens("ring", [0.9, 0.4, -0.3]), "smooth")["models"]["ring"][
+        "sentence"]
+    assert "LOO (PSIS, exact refits for the flagged bodies) prefers ring" in sentence
+
+
 class _LinearPointwise:
     def __init__(self, x, y, sigma, with_slope):
         self.x, self.y, self.sigma, self.with_slope = x, y, sigma, with_slope
