@@ -5,6 +5,8 @@ skipped, sub-panels, reads); only the order of floating-point additions differs,
 agree to ~1e-12 (tested). The array code builds dozens of temporary (rows x panels x nodes)
 arrays per call; here one pass per (walker, body) row builds its table and a second pass reads
 it, which makes the limits part several times faster (``benchmarks/bench_likelihood.py``).
+The table keeps each panel's monomial coefficients of q's interpolant (not its node values),
+so a read costs only its own short Gauss rule.
 
 ``log_ndtr`` is written out (numba has no ``scipy.special``): ln of ``erfc`` from the C
 library for x > -20, the asymptotic series of ln Phi below (Abramowitz & Stegun 1964, 26.2.12;
@@ -38,6 +40,8 @@ def log_ndtr(x):
 
 @njit(cache=True)
 def _logaddexp(a, b):
+    if b == -np.inf:  # exact: a + log1p(exp(-inf)) is a, and most skipped panels add -inf
+        return a
     if a == b:
         return a + math.log(2.0) if a != -np.inf else a
     if a > b:
@@ -46,109 +50,121 @@ def _logaddexp(a, b):
 
 
 @njit(cache=True)
-def _log_h(y, zl, vl, lim, hd, zbar, v, ln_k, tail):
-    """ln h(Y) of one row (see ``steady._log_h``); with ``tail`` the EMG replaces the
-    detections' Gaussian (ln F below the table, ``y`` is then phi)."""
-    out = 0.0
-    if hd:
-        if tail:
-            out = ln_k - (y - zbar) + 0.5 * v + log_ndtr((y - zbar - v) / math.sqrt(v))
-        else:
-            out = ln_k - 0.5 * (zbar - y) ** 2 / v - 0.5 * math.log(v) - _LN_SQRT_2PI
-    for j in range(zl.shape[0]):
-        if lim[j]:
-            out += log_ndtr((zl[j] - y) / math.sqrt(vl[j]))
-    return out
+def _gauss(y, zbar, v, ln_k, half_ln_v):
+    """ln K N(zbar; Y, V) (see ``steady._log_h``), ``half_ln_v`` = ln(V) / 2."""
+    return ln_k - 0.5 * (zbar - y) ** 2 / v - half_ln_v - _LN_SQRT_2PI
 
 
 @njit(cache=True)
-def _horner(c, x):
-    n = c.shape[0]
-    acc = c[n - 1] * x + c[n - 2]
+def _emg(y, zbar, v, ln_k, sv):
+    """ln K + the EMG log-density at phi = ``y`` (``sv`` = sqrt(V)): ln F below the table."""
+    return ln_k - (y - zbar) + 0.5 * v + log_ndtr((y - zbar - v) / sv)
+
+
+# Work-space rows of _log_partial: one array, because every array a compiled call receives
+# costs an atomic reference increment and decrement, which made up half the kernel's time.
+_COEF, _X3, _W3, _X6, _W6, _X8, _LNW8, _HI, _PART, _VALS = range(10)
+
+
+@njit(cache=True)
+def _horner(work, n, x):
+    acc = work[_COEF, n - 1] * x + work[_COEF, n - 2]
     for j in range(n - 3, -1, -1):
-        acc = acc * x + c[j]
+        acc = acc * x + work[_COEF, j]
     return acc
 
 
 @njit(cache=True)
-def _log_partial(qv, t, h, spread, amat, x3, w3, x6, w6, x8, w8, sub_range, negligible,
-                 scratch):
-    """ln int_0^t h exp(q~(s)) ds for one panel (see ``steady._log_partial``).
+def _log_partial(work, n, n8, t, h, spread, sub_range, negligible):
+    """ln int_0^t h exp(q~(s)) ds for one panel (see ``steady._log_partial``), q~ given by its
+    ``n`` monomial coefficients in ``work[_COEF]``.
 
-    ``scratch`` (4, max(n, 32)) is work space (no allocation per read)."""
-    n = qv.shape[0]
-    c, hi, part = scratch[0, :n], scratch[1], scratch[2]
-    for k in range(n):
-        c[k] = 0.0
-        for j in range(n):
-            c[k] += amat[k, j] * qv[j]
+    ``work`` (10, max(n, 32, n8)) also holds the 3-, 6- and ``n8``-node rules (``_X3`` ...,
+    ``_LNW8`` the logs of the 8-node weights) and scratch rows (no allocation per read)."""
     need = spread * t
     if need <= 6.0:
-        xs, ws = (x3, w3) if need <= 1.5 else (x6, w6)
-        shift = c[0]
+        shift = work[_COEF, 0]
         s = 0.0
-        for j in range(xs.shape[0]):
-            s += math.exp(_horner(c, t * xs[j]) - shift) * ws[j]
+        if need <= 1.5:
+            for j in range(3):
+                s += math.exp(_horner(work, n, t * work[_X3, j]) - shift) * work[_W3, j]
+        else:
+            for j in range(6):
+                s += math.exp(_horner(work, n, t * work[_X6, j]) - shift) * work[_W6, j]
         return (math.log(s) + shift) + math.log(t * h)
     n_sub = min(int(math.ceil(need / sub_range)), 32)
     frac = 1.0 / n_sub
+    ln_frac = math.log(frac)
     best = -np.inf
-    for k in range(n_sub):
-        s0 = k * frac
-        hi[k] = max(_horner(c, t * s0), _horner(c, t * (s0 + frac)))
-        best = max(best, hi[k])
+    for i in range(n_sub):
+        s0 = i * frac
+        work[_HI, i] = max(_horner(work, n, t * s0), _horner(work, n, t * (s0 + frac)))
+        best = max(best, work[_HI, i])
     top = -np.inf
-    vals = scratch[3]
-    for k in range(n_sub):
-        part[k] = -np.inf
-        if hi[k] < best - negligible:
+    n_live = 0
+    for i in range(n_sub):
+        work[_PART, i] = -np.inf
+        if work[_HI, i] < best - negligible:
             continue
-        s0 = k * frac
+        n_live += 1
+        s0 = i * frac
         m = -np.inf
-        for j in range(x8.shape[0]):
-            vals[j] = _horner(c, t * (s0 + frac * x8[j])) + math.log(w8[j])
-            m = max(m, vals[j])
+        for j in range(n8):
+            work[_VALS, j] = _horner(work, n, t * (s0 + frac * work[_X8, j])) + work[_LNW8, j]
+            m = max(m, work[_VALS, j])
         acc = 0.0
-        for j in range(x8.shape[0]):
-            acc += math.exp(vals[j] - m)
-        part[k] = math.log(acc) + m + math.log(frac)
-        top = max(top, part[k])
+        for j in range(n8):
+            acc += math.exp(work[_VALS, j] - m)
+        work[_PART, i] = math.log(acc) + m + ln_frac
+        top = max(top, work[_PART, i])
+    if n_live == 1:  # the sum below is exp(0) = 1 exactly
+        return top + math.log(t * h)
     tot = 0.0
-    for k in range(n_sub):
-        if part[k] > -np.inf:
-            tot += math.exp(part[k] - top)
+    for i in range(n_sub):
+        if work[_PART, i] > -np.inf:
+            tot += math.exp(work[_PART, i] - top)
     return top + math.log(tot) + math.log(t * h)
 
 
 @njit(cache=True)
-def _row_breaks(zl, vl, lim, hd, zbar, v, grades, inactive):
-    """Sorted Y breakpoints of one row and the range start (see ``steady._y_breaks``)."""
-    n_l = zl.shape[0]
-    sv = math.sqrt(v) if hd else 1.0
-    peak = zbar + (v if hd else 0.0)
+def _row_breaks(r, lz, lsd, n_lim, det, grades, inactive, pts):
+    """Sorted Y breakpoints of row ``r`` into ``pts`` and the range start (see
+    ``steady._y_breaks``)."""
+    hd = det[r, 0] != 0.0
+    n_l = lz.shape[1]
+    nl = n_lim[r]
+    sv = det[r, 5] if hd else 1.0
+    peak = det[r, 1] + (det[r, 2] if hd else 0.0)
     lo_lim, hi_lim, lowest = np.inf, -np.inf, np.inf
-    for j in range(n_l):
-        if lim[j]:
-            sd = math.sqrt(vl[j])
-            lo_lim = min(lo_lim, zl[j] - 20.0 * sd)
-            hi_lim = max(hi_lim, zl[j] + 20.0 * sd)
-            lowest = min(lowest, zl[j] - inactive * sd)
+    for j in range(nl):
+        sd = lsd[r, j]
+        lo_lim = min(lo_lim, lz[r, j] - 20.0 * sd)
+        hi_lim = max(hi_lim, lz[r, j] + 20.0 * sd)
+        lowest = min(lowest, lz[r, j] - inactive * sd)
     y_a = min(peak - 20.0 * sv if hd else np.inf, lo_lim)
     y_a = max(y_a, lowest)
     y_b = max(peak + 20.0 * sv if hd else -np.inf, hi_lim)
     ng = grades.shape[0]
-    pts = np.empty(ng * (n_l + 1) + 2)
     for i in range(ng):
         pts[i] = peak + sv * grades[i] if hd else y_a
+    # the padding slots (the array code's masked limits) sit at y_a, like its clip does
     for j in range(n_l):
-        sd = math.sqrt(vl[j]) if lim[j] else 0.0
         for i in range(ng):
-            pts[ng * (j + 1) + i] = zl[j] + sd * grades[i] if lim[j] else y_a
-    pts[-2] = y_a
-    pts[-1] = y_b
-    for i in range(pts.shape[0]):
+            pts[ng * (j + 1) + i] = lz[r, j] + lsd[r, j] * grades[i] if j < nl else y_a
+    nb = pts.shape[0]
+    pts[nb - 2] = y_a
+    pts[nb - 1] = y_b
+    for i in range(nb):
         pts[i] = min(max(pts[i], y_a), y_b)
-    return np.sort(pts), y_a
+    # insertion sort: a few dozen values, mostly in runs already sorted (the graded points)
+    for i in range(1, nb):
+        x = pts[i]
+        j = i - 1
+        while j >= 0 and pts[j] > x:
+            pts[j + 1] = pts[j]
+            j -= 1
+        pts[j + 1] = x
+    return y_a
 
 
 @njit(cache=True)
@@ -161,75 +177,127 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
     """
     inactive, skip_peak, sub_range, negligible, diluted, gentle = (
         consts[0], consts[1], consts[2], consts[3], consts[4], consts[5])
-    n_rows = zbar.shape[0]
-    n = xn.shape[0]
+    n_rows, n_l = zl.shape
+    n, n8 = xn.shape[0], x8.shape[0]
     top_phi = np.full(n_rows, -np.inf)
     for i in range(phi.shape[0]):
         top_phi[row[i]] = max(top_phi[row[i]], phi[i])
-    nb = grades.shape[0] * (zl.shape[1] + 1) + 2
+    # per row, once: the limits compacted (mask order: the sums below add in the array code's
+    # order) with their sds; the detections' (has, zbar, V, ln K, ln(V) / 2, sqrt(V))
+    lz = np.empty((n_rows, n_l))
+    lsd = np.empty((n_rows, n_l))
+    n_lim = np.zeros(n_rows, np.int64)
+    det = np.zeros((n_rows, 6))
+    for r in range(n_rows):
+        for j in range(n_l):
+            if lim[r, j]:
+                lz[r, n_lim[r]] = zl[r, j]
+                lsd[r, n_lim[r]] = math.sqrt(vl[r, j])
+                n_lim[r] += 1
+        if hd[r]:
+            det[r, 0] = 1.0
+            det[r, 4] = 0.5 * math.log(v[r])
+            det[r, 5] = math.sqrt(v[r])
+        det[r, 1], det[r, 2], det[r, 3] = zbar[r], v[r], ln_k[r]
+    work = np.empty((10, max(n, 32, n8)))
+    for j in range(3):
+        work[_X3, j], work[_W3, j] = x3[j], w3[j]
+    for j in range(6):
+        work[_X6, j], work[_W6, j] = x6[j], w6[j]
+    for j in range(n8):
+        work[_X8, j], work[_LNW8, j] = x8[j], math.log(w8[j])
+    nb = grades.shape[0] * (n_l + 1) + 2
     brk = np.empty((n_rows, nb))
-    q = np.full((n_rows, nb - 1, n), -np.inf)
-    spread = np.zeros((n_rows, nb - 1))
-    bound = np.empty((n_rows, nb - 1))
+    # per panel: q's interpolant (monomial coefficients), whether its first node is finite
+    # (the array code's test), and the spread a read uses (0 where C hardly changes)
+    coef = np.empty((n_rows, nb - 1, n))
+    live = np.zeros((n_rows, nb - 1), np.bool_)
+    read_spread = np.zeros((n_rows, nb - 1))
     log_c = np.empty((n_rows, nb))
     crude = np.empty(nb - 1)
-    scratch = np.empty((4, max(n, 32, x8.shape[0])))
+    spread = np.empty(nb - 1)
+    bound = np.empty(nb - 1)
+    qv = np.empty(n)
     for r in range(n_rows):
-        br, y_a = _row_breaks(zl[r], vl[r], lim[r], hd[r], zbar[r], v[r], grades, inactive)
-        brk[r] = br
+        y_a = _row_breaks(r, lz, lsd, n_lim, det, grades, inactive, brk[r])
+        hd_r, zb_r, v_r, lk_r, hlv_r, sv_r = (det[r, 0] != 0.0, det[r, 1], det[r, 2],
+                                              det[r, 3], det[r, 4], det[r, 5])
         cut = top_phi[r]
-        if hd[r]:
-            cut = min(cut, zbar[r] + v[r] + skip_peak * math.sqrt(v[r]))
+        if hd_r:
+            cut = min(cut, zb_r + v_r + skip_peak * sv_r)
         for k in range(nb - 1):
-            a, h = br[k], br[k + 1] - br[k]
+            a, h = brk[r, k], brk[r, k + 1] - brk[r, k]
             top = -np.inf
             low = np.inf
             if h > 0 and a <= cut:
                 for j in range(n):
                     y = a + h * xn[j]
-                    q[r, k, j] = y + _log_h(y, zl[r], vl[r], lim[r], hd[r], zbar[r], v[r],
-                                            ln_k[r], False)
-                    top = max(top, q[r, k, j])
-                    low = min(low, q[r, k, j])
+                    lh = _gauss(y, zb_r, v_r, lk_r, hlv_r) if hd_r else 0.0
+                    for m in range(n_lim[r]):
+                        lh += log_ndtr((lz[r, m] - y) / lsd[r, m])
+                    qv[j] = y + lh
+                    top = max(top, qv[j])
+                    low = min(low, qv[j])
+                live[r, k] = qv[0] > -np.inf
+                for i in range(n):
+                    c = 0.0
+                    for j in range(n):
+                        c += amat[i, j] * qv[j]
+                    coef[r, k, i] = c
             if top > -np.inf:
-                spread[r, k] = top - low
+                spread[k] = top - low
                 s = 0.0
                 for j in range(n):
-                    s += math.exp(q[r, k, j] - top) * wn[j]
+                    s += math.exp(qv[j] - top) * wn[j]
                 crude[k] = math.log(h * s) + top
-                bound[r, k] = top + math.log(h)
+                bound[k] = top + math.log(h)
             else:
+                spread[k] = 0.0
                 crude[k] = -np.inf
-                bound[r, k] = math.log(h) if h > 0 else -np.inf
+                bound[k] = math.log(h) if h > 0 else -np.inf
         # ln C at each panel start: the crude Gauss sums decide which steep panels to refine
-        start = y_a + _log_h(y_a, zl[r], vl[r], lim[r], hd[r], zbar[r], v[r], ln_k[r], True)
+        lh = _emg(y_a, zb_r, v_r, lk_r, sv_r) if hd_r else 0.0
+        for m in range(n_lim[r]):
+            lh += log_ndtr((lz[r, m] - y_a) / lsd[r, m])
+        start = y_a + lh
         log_c[r, 0] = start
         for k in range(nb - 1):
             panel = crude[k]
-            h = br[k + 1] - br[k]
-            if (panel > -np.inf and h > 0 and spread[r, k] > gentle
-                    and bound[r, k] > start - diluted):
-                panel = _log_partial(q[r, k], 1.0, h, spread[r, k], amat, x3, w3, x6, w6, x8,
-                                     w8, sub_range, negligible, scratch)
+            h = brk[r, k + 1] - brk[r, k]
+            if (panel > -np.inf and h > 0 and spread[k] > gentle
+                    and bound[k] > start - diluted):
+                for j in range(n):
+                    work[_COEF, j] = coef[r, k, j]
+                panel = _log_partial(work, n, n8, 1.0, h, spread[k], sub_range, negligible)
             start = _logaddexp(start, crude[k])
             log_c[r, k + 1] = _logaddexp(log_c[r, k], panel)
+            read_spread[r, k] = 0.0 if log_c[r, k] > bound[k] + diluted else spread[k]
     out = np.empty(phi.shape[0])
     for i in range(phi.shape[0]):
         r, p_i = row[i], phi[i]
-        br = brk[r]
-        if p_i < br[0]:
-            out[i] = _log_h(p_i, zl[r], vl[r], lim[r], hd[r], zbar[r], v[r], ln_k[r], True)
+        if p_i < brk[r, 0]:
+            lh = _emg(p_i, det[r, 1], det[r, 2], det[r, 3], det[r, 5]) if det[r, 0] else 0.0
+            for m in range(n_lim[r]):
+                lh += log_ndtr((lz[r, m] - p_i) / lsd[r, m])
+            out[i] = lh
             continue
-        p = np.searchsorted(br, p_i, side="right") - 1
+        # the last break <= p_i (searchsorted side="right", minus one)
+        p, hi = 0, nb
+        while hi - p > 1:
+            mid = (p + hi) >> 1
+            if brk[r, mid] <= p_i:
+                p = mid
+            else:
+                hi = mid
         if p >= nb - 1:
             out[i] = log_c[r, nb - 1] - p_i
             continue
-        a, h = br[p], br[p + 1] - br[p]
+        a, h = brk[r, p], brk[r, p + 1] - brk[r, p]
         t = min(max((p_i - a) / h, 0.0), 1.0) if h > 0 else 0.0
         part = -np.inf
-        if t > 0 and q[r, p, 0] > -np.inf:
-            sp = 0.0 if log_c[r, p] > bound[r, p] + diluted else spread[r, p]
-            part = _log_partial(q[r, p], t, h, sp, amat, x3, w3, x6, w6, x8, w8, sub_range,
-                                negligible, scratch)
+        if t > 0 and live[r, p]:
+            for j in range(n):
+                work[_COEF, j] = coef[r, p, j]
+            part = _log_partial(work, n, n8, t, h, read_spread[r, p], sub_range, negligible)
         out[i] = _logaddexp(log_c[r, p], part) - p_i
     return out
