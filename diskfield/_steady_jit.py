@@ -273,6 +273,7 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
             log_c[r, k + 1] = _logaddexp(log_c[r, k], panel)
             read_spread[r, k] = 0.0 if log_c[r, k] > bound[k] + diluted else spread[k]
     out = np.empty(phi.shape[0])
+    prev_r, p = -1, 0
     for i in range(phi.shape[0]):
         r, p_i = row[i], phi[i]
         if p_i < brk[r, 0]:
@@ -281,14 +282,22 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
                 lh += log_ndtr((lz[r, m] - p_i) / lsd[r, m])
             out[i] = lh
             continue
-        # the last break <= p_i (searchsorted side="right", minus one)
-        p, hi = 0, nb
-        while hi - p > 1:
-            mid = (p + hi) >> 1
-            if brk[r, mid] <= p_i:
-                p = mid
-            else:
-                hi = mid
+        # the last break <= p_i (searchsorted side="right", minus one); a row's reads come
+        # in runs of nearby phi (a walker's distance nodes), so start from the previous one
+        if r != prev_r:
+            p, hi = 0, nb
+            while hi - p > 1:
+                mid = (p + hi) >> 1
+                if brk[r, mid] <= p_i:
+                    p = mid
+                else:
+                    hi = mid
+        else:
+            while p < nb - 1 and brk[r, p + 1] <= p_i:
+                p += 1
+            while brk[r, p] > p_i:
+                p -= 1
+        prev_r = r
         if p >= nb - 1:
             out[i] = log_c[r, nb - 1] - p_i
             continue
