@@ -27,6 +27,13 @@ Design
   scale 1 (which proposes exact jumps between modes occupied by different walkers — the
   ring position is often multimodal), and the affine-invariant stretch move (Goodman &
   Weare 2010). ``DESnookerMove`` is not used: it is biased in emcee 3.1.6.
+  A model with rings adds two moves (``_moves``): an independence move that redraws one
+  ring's (amplitude, radius, width) from the prior (15 % of steps; a weakly constrained
+  ring jumps between its radius modes at once), and differential evolution on the
+  remaining parameters only (30 %; ``field_1au``, ``power_index`` and ``intrinsic_scatter``
+  mix in their own 3-d subspace instead of waiting for a good joint 9-d proposal). On the
+  demo's two-ring fit the largest τ fell from 160-200 to 95-115 steps and the run from
+  10,000+ steps to 5,500-6,000 (``benchmarks/bench_mixing.py``, two seeds).
 * The chain runs in chunks held in memory. After every chunk the integrated
   autocorrelation time τ is re-estimated and the whole run state (chain, log-probs,
   blobs, acceptance counts, the legacy ``RandomState`` state) is written to a temporary
@@ -260,9 +267,83 @@ def _with_blobs(model, theta, ok, base):
     return np.column_stack([total, pointwise])
 
 
-def _moves():
-    return [(emcee.moves.DEMove(), 0.7), (emcee.moves.DEMove(gamma0=1.0), 0.1),
-            (emcee.moves.StretchMove(), 0.2)]
+def _moves(model=None):
+    blocks = _ring_blocks(model)
+    if not blocks:
+        return [(emcee.moves.DEMove(), 0.7), (emcee.moves.DEMove(gamma0=1.0), 0.1),
+                (emcee.moves.StretchMove(), 0.2)]
+    rest = np.setdiff1d(np.arange(len(model.parameter_names)), np.concatenate(blocks))
+    return [(emcee.moves.DEMove(), 0.35), (emcee.moves.DEMove(gamma0=1.0), 0.08),
+            (emcee.moves.StretchMove(), 0.12), (_BlockFromPrior(blocks), 0.15),
+            (_SubspaceDE(rest), 0.3)]
+
+
+class _SubspaceDE(emcee.moves.DEMove):
+    """Differential evolution in a subset of the coordinates (the others kept).
+
+    The difference of two walkers of the complementary half is applied to ``cols`` only, with
+    the stretch 2.38 / sqrt(2 k) of a k-dimensional move. The proposal stays symmetric, so the
+    move is valid on its own (ter Braak 2006, Stat. Comput. 16, 239; subspace updates as in
+    Vrugt et al. 2009, IJNSNS 10, 273).
+    """
+
+    def __init__(self, cols):
+        self.cols = np.asarray(cols)
+        super().__init__(gamma0=2.38 / np.sqrt(2 * max(len(self.cols), 1)))
+
+    def get_proposal(self, s, c, random):
+        q, factor = super().get_proposal(s, c, random)
+        keep = np.setdiff1d(np.arange(s.shape[1]), self.cols)
+        q[:, keep] = s[:, keep]
+        return q, factor
+
+
+def _ring_blocks(model):
+    """Column indices of each ring's sampled (amplitude, radius, width), for the block move."""
+    names = list(getattr(model, "parameter_names", ()))
+    blocks = []
+    for prefix in ("ring", "ring2"):
+        cols = [names.index(f"{prefix}_{m}") for m in ("amplitude", "radius", "width")
+                if f"{prefix}_{m}" in names]
+        if cols:
+            blocks.append(np.array(cols))
+    return blocks
+
+
+class _BlockFromPrior(emcee.moves.MHMove):
+    """Independence Metropolis–Hastings move: one ring's parameters redrawn from the prior.
+
+    In the sampler's coordinates z = logit(u) the prior is the product of standard logistic
+    densities q(z) = u (1 - u), so a block drawn as z' = logit(u'), u' ~ U(0, 1), has
+    proposal density q(z'_block) and the MH factor ln q(z_block) - ln q(z'_block); the
+    acceptance is then the likelihood ratio (Tierney 1994, Ann. Stat. 22, 1701: independence
+    sampler). A ring the data hardly constrain (a second ring, a ring in a gap between
+    bodies) jumps between the modes of its radius at once instead of diffusing across them.
+    """
+
+    def __init__(self, blocks):
+        self.blocks = [np.asarray(b) for b in blocks]
+        super().__init__(self._propose)
+
+    def _propose(self, coords, random):
+        new = np.array(coords, copy=True)
+        pick = random.randint(len(self.blocks), size=len(coords))
+        log_factor = np.zeros(len(coords))
+        for k, cols in enumerate(self.blocks):
+            rows = np.flatnonzero(pick == k)
+            if not len(rows):
+                continue
+            u = random.uniform(size=(len(rows), len(cols)))
+            z_new = special.logit(np.clip(u, 1e-12, 1 - 1e-12))
+            new[np.ix_(rows, cols)] = z_new
+            log_factor[rows] = (_log_logistic(coords[np.ix_(rows, cols)]).sum(axis=1)
+                                - _log_logistic(z_new).sum(axis=1))
+        return new, log_factor
+
+
+def _log_logistic(z):
+    """ln of the standard logistic density, ln u(1 - u) with u = expit(z)."""
+    return -(np.logaddexp(0.0, z) + np.logaddexp(0.0, -z))
 
 
 def _ordering(model):
@@ -370,7 +451,8 @@ def run_sampler(model, *, seed: int, settings: SamplerSettings = SamplerSettings
     logp = _unit_log_probability(model, wall=settings.ordered_region == "wall")
     loop = (_resume_loop(checkpoint, fp) if resume
             else _fresh_loop(model, settings, seed, logp, n_walkers))
-    sampler = emcee.EnsembleSampler(n_walkers, len(names), logp, vectorize=True, moves=_moves())
+    sampler = emcee.EnsembleSampler(n_walkers, len(names), logp, vectorize=True,
+                                    moves=_moves(model))
     with _progress(settings, loop.done) as bar:
         while loop.done < settings.max_steps and not loop.converged:
             _advance(loop, sampler, min(settings.chunk, settings.max_steps - loop.done), bar,
