@@ -50,83 +50,6 @@ def _logaddexp(a, b):
 
 
 @njit(cache=True)
-def _gauss(y, zbar, v, ln_k, half_ln_v):
-    """ln K N(zbar; Y, V) (see ``steady._log_h``), ``half_ln_v`` = ln(V) / 2."""
-    return ln_k - 0.5 * (zbar - y) ** 2 / v - half_ln_v - _LN_SQRT_2PI
-
-
-@njit(cache=True)
-def _emg(y, zbar, v, ln_k, sv):
-    """ln K + the EMG log-density at phi = ``y`` (``sv`` = sqrt(V)): ln F below the table."""
-    return ln_k - (y - zbar) + 0.5 * v + log_ndtr((y - zbar - v) / sv)
-
-
-# Work-space rows of _log_partial: one array, because every array a compiled call receives
-# costs an atomic reference increment and decrement, which made up half the kernel's time.
-_COEF, _X3, _W3, _X6, _W6, _X8, _LNW8, _HI, _PART, _VALS = range(10)
-
-
-@njit(cache=True)
-def _horner(work, n, x):
-    acc = work[_COEF, n - 1] * x + work[_COEF, n - 2]
-    for j in range(n - 3, -1, -1):
-        acc = acc * x + work[_COEF, j]
-    return acc
-
-
-@njit(cache=True)
-def _log_partial(work, n, n8, t, h, spread, sub_range, negligible):
-    """ln int_0^t h exp(q~(s)) ds for one panel (see ``steady._log_partial``), q~ given by its
-    ``n`` monomial coefficients in ``work[_COEF]``.
-
-    ``work`` (10, max(n, 32, n8)) also holds the 3-, 6- and ``n8``-node rules (``_X3`` ...,
-    ``_LNW8`` the logs of the 8-node weights) and scratch rows (no allocation per read)."""
-    need = spread * t
-    if need <= 6.0:
-        shift = work[_COEF, 0]
-        s = 0.0
-        if need <= 1.5:
-            for j in range(3):
-                s += math.exp(_horner(work, n, t * work[_X3, j]) - shift) * work[_W3, j]
-        else:
-            for j in range(6):
-                s += math.exp(_horner(work, n, t * work[_X6, j]) - shift) * work[_W6, j]
-        return (math.log(s) + shift) + math.log(t * h)
-    n_sub = min(int(math.ceil(need / sub_range)), 32)
-    frac = 1.0 / n_sub
-    ln_frac = math.log(frac)
-    best = -np.inf
-    for i in range(n_sub):
-        s0 = i * frac
-        work[_HI, i] = max(_horner(work, n, t * s0), _horner(work, n, t * (s0 + frac)))
-        best = max(best, work[_HI, i])
-    top = -np.inf
-    n_live = 0
-    for i in range(n_sub):
-        work[_PART, i] = -np.inf
-        if work[_HI, i] < best - negligible:
-            continue
-        n_live += 1
-        s0 = i * frac
-        m = -np.inf
-        for j in range(n8):
-            work[_VALS, j] = _horner(work, n, t * (s0 + frac * work[_X8, j])) + work[_LNW8, j]
-            m = max(m, work[_VALS, j])
-        acc = 0.0
-        for j in range(n8):
-            acc += math.exp(work[_VALS, j] - m)
-        work[_PART, i] = math.log(acc) + m + ln_frac
-        top = max(top, work[_PART, i])
-    if n_live == 1:  # the sum below is exp(0) = 1 exactly
-        return top + math.log(t * h)
-    tot = 0.0
-    for i in range(n_sub):
-        if work[_PART, i] > -np.inf:
-            tot += math.exp(work[_PART, i] - top)
-    return top + math.log(tot) + math.log(t * h)
-
-
-@njit(cache=True)
 def _row_breaks(r, lz, lsd, n_lim, det, grades, inactive, pts):
     """Sorted Y breakpoints of row ``r`` into ``pts`` and the range start (see
     ``steady._y_breaks``)."""
@@ -178,7 +101,7 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
     inactive, skip_peak, sub_range, negligible, diluted, gentle = (
         consts[0], consts[1], consts[2], consts[3], consts[4], consts[5])
     n_rows, n_l = zl.shape
-    n, n8 = xn.shape[0], x8.shape[0]
+    n = xn.shape[0]
     top_phi = np.full(n_rows, -np.inf)
     for i in range(phi.shape[0]):
         top_phi[row[i]] = max(top_phi[row[i]], phi[i])
@@ -199,13 +122,9 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
             det[r, 4] = 0.5 * math.log(v[r])
             det[r, 5] = math.sqrt(v[r])
         det[r, 1], det[r, 2], det[r, 3] = zbar[r], v[r], ln_k[r]
-    work = np.empty((10, max(n, 32, n8)))
-    for j in range(3):
-        work[_X3, j], work[_W3, j] = x3[j], w3[j]
-    for j in range(6):
-        work[_X6, j], work[_W6, j] = x6[j], w6[j]
-    for j in range(n8):
-        work[_X8, j], work[_LNW8, j] = x8[j], math.log(w8[j])
+    ln_w8 = np.empty(x8.shape[0])
+    for j in range(x8.shape[0]):
+        ln_w8[j] = math.log(w8[j])
     nb = grades.shape[0] * (n_l + 1) + 2
     brk = np.empty((n_rows, nb))
     # per panel: q's interpolant (monomial coefficients), whether its first node is finite
@@ -218,13 +137,85 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
     spread = np.empty(nb - 1)
     bound = np.empty(nb - 1)
     qv = np.empty(n)
+    sub_hi = np.empty(32)
+    sub_part = np.empty(32)
+    sub_vals = np.empty(x8.shape[0])
+
+    # The helpers are inner functions: numba inlines them, and the arrays they read stay this
+    # function's own. A compiled function taking arrays pays an atomic reference increment
+    # and decrement per array per call, which was half the kernel's time.
+    def log_h(y, r, tail):
+        """ln h(Y) of row ``r`` (see ``steady._log_h``); with ``tail`` the EMG replaces the
+        detections' Gaussian (ln F below the table, ``y`` is then phi)."""
+        out = 0.0
+        if det[r, 0] != 0.0:
+            zb, vr, lk = det[r, 1], det[r, 2], det[r, 3]
+            if tail:
+                out = lk - (y - zb) + 0.5 * vr + log_ndtr((y - zb - vr) / det[r, 5])
+            else:
+                out = lk - 0.5 * (zb - y) ** 2 / vr - det[r, 4] - _LN_SQRT_2PI
+        for j in range(n_lim[r]):
+            out += log_ndtr((lz[r, j] - y) / lsd[r, j])
+        return out
+
+    def horner(r, k, x):
+        acc = coef[r, k, n - 1] * x + coef[r, k, n - 2]
+        for j in range(n - 3, -1, -1):
+            acc = acc * x + coef[r, k, j]
+        return acc
+
+    def log_partial(r, k, t, h, spread):
+        """ln int_0^t h exp(q~(s)) ds for panel ``k`` of row ``r`` (see
+        ``steady._log_partial``), q~ from its monomial coefficients."""
+        need = spread * t
+        if need <= 6.0:
+            shift = coef[r, k, 0]
+            s = 0.0
+            if need <= 1.5:
+                for j in range(x3.shape[0]):
+                    s += math.exp(horner(r, k, t * x3[j]) - shift) * w3[j]
+            else:
+                for j in range(x6.shape[0]):
+                    s += math.exp(horner(r, k, t * x6[j]) - shift) * w6[j]
+            return (math.log(s) + shift) + math.log(t * h)
+        n_sub = min(int(math.ceil(need / sub_range)), 32)
+        frac = 1.0 / n_sub
+        ln_frac = math.log(frac)
+        best = -np.inf
+        for i in range(n_sub):
+            s0 = i * frac
+            sub_hi[i] = max(horner(r, k, t * s0), horner(r, k, t * (s0 + frac)))
+            best = max(best, sub_hi[i])
+        top = -np.inf
+        n_live = 0
+        for i in range(n_sub):
+            sub_part[i] = -np.inf
+            if sub_hi[i] < best - negligible:
+                continue
+            n_live += 1
+            s0 = i * frac
+            m = -np.inf
+            for j in range(x8.shape[0]):
+                sub_vals[j] = horner(r, k, t * (s0 + frac * x8[j])) + ln_w8[j]
+                m = max(m, sub_vals[j])
+            acc = 0.0
+            for j in range(x8.shape[0]):
+                acc += math.exp(sub_vals[j] - m)
+            sub_part[i] = math.log(acc) + m + ln_frac
+            top = max(top, sub_part[i])
+        if n_live == 1:  # the sum below is exp(0) = 1 exactly
+            return top + math.log(t * h)
+        tot = 0.0
+        for i in range(n_sub):
+            if sub_part[i] > -np.inf:
+                tot += math.exp(sub_part[i] - top)
+        return top + math.log(tot) + math.log(t * h)
+
     for r in range(n_rows):
         y_a = _row_breaks(r, lz, lsd, n_lim, det, grades, inactive, brk[r])
-        hd_r, zb_r, v_r, lk_r, hlv_r, sv_r = (det[r, 0] != 0.0, det[r, 1], det[r, 2],
-                                              det[r, 3], det[r, 4], det[r, 5])
         cut = top_phi[r]
-        if hd_r:
-            cut = min(cut, zb_r + v_r + skip_peak * sv_r)
+        if det[r, 0] != 0.0:
+            cut = min(cut, det[r, 1] + det[r, 2] + skip_peak * det[r, 5])
         for k in range(nb - 1):
             a, h = brk[r, k], brk[r, k + 1] - brk[r, k]
             top = -np.inf
@@ -232,10 +223,7 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
             if h > 0 and a <= cut:
                 for j in range(n):
                     y = a + h * xn[j]
-                    lh = _gauss(y, zb_r, v_r, lk_r, hlv_r) if hd_r else 0.0
-                    for m in range(n_lim[r]):
-                        lh += log_ndtr((lz[r, m] - y) / lsd[r, m])
-                    qv[j] = y + lh
+                    qv[j] = y + log_h(y, r, False)
                     top = max(top, qv[j])
                     low = min(low, qv[j])
                 live[r, k] = qv[0] > -np.inf
@@ -256,19 +244,14 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
                 crude[k] = -np.inf
                 bound[k] = math.log(h) if h > 0 else -np.inf
         # ln C at each panel start: the crude Gauss sums decide which steep panels to refine
-        lh = _emg(y_a, zb_r, v_r, lk_r, sv_r) if hd_r else 0.0
-        for m in range(n_lim[r]):
-            lh += log_ndtr((lz[r, m] - y_a) / lsd[r, m])
-        start = y_a + lh
+        start = y_a + log_h(y_a, r, True)
         log_c[r, 0] = start
         for k in range(nb - 1):
             panel = crude[k]
             h = brk[r, k + 1] - brk[r, k]
             if (panel > -np.inf and h > 0 and spread[k] > gentle
                     and bound[k] > start - diluted):
-                for j in range(n):
-                    work[_COEF, j] = coef[r, k, j]
-                panel = _log_partial(work, n, n8, 1.0, h, spread[k], sub_range, negligible)
+                panel = log_partial(r, k, 1.0, h, spread[k])
             start = _logaddexp(start, crude[k])
             log_c[r, k + 1] = _logaddexp(log_c[r, k], panel)
             read_spread[r, k] = 0.0 if log_c[r, k] > bound[k] + diluted else spread[k]
@@ -277,10 +260,7 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
     for i in range(phi.shape[0]):
         r, p_i = row[i], phi[i]
         if p_i < brk[r, 0]:
-            lh = _emg(p_i, det[r, 1], det[r, 2], det[r, 3], det[r, 5]) if det[r, 0] else 0.0
-            for m in range(n_lim[r]):
-                lh += log_ndtr((lz[r, m] - p_i) / lsd[r, m])
-            out[i] = lh
+            out[i] = log_h(p_i, r, True)
             continue
         # the last break <= p_i (searchsorted side="right", minus one); a row's reads come
         # in runs of nearby phi (a walker's distance nodes), so start from the previous one
@@ -305,8 +285,6 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
         t = min(max((p_i - a) / h, 0.0), 1.0) if h > 0 else 0.0
         part = -np.inf
         if t > 0 and live[r, p]:
-            for j in range(n):
-                work[_COEF, j] = coef[r, p, j]
-            part = _log_partial(work, n, n8, t, h, read_spread[r, p], sub_range, negligible)
+            part = log_partial(r, p, t, h, read_spread[r, p])
         out[i] = _logaddexp(log_c[r, p], part) - p_i
     return out
