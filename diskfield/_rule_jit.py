@@ -22,8 +22,17 @@ import numpy as np
 from numba import njit
 
 @njit(cache=True)
+def _coefficients(form, w):
+    """Row ``w`` of ``form`` as a tuple: passed by value, so the per-node calls below carry
+    no array (numba reference-counts every array argument of a call, which cost more than
+    the arithmetic here)."""
+    return (form[w, 0], form[w, 1], form[w, 2], form[w, 3], form[w, 4], form[w, 5],
+            form[w, 6], form[w, 7], form[w, 8], form[w, 9])
+
+
+@njit(cache=True)
 def log_field(r, c, n_rings, has_break, min_factor):
-    """ln R at one distance ``r`` [AU] for the coefficient row ``c``."""
+    """ln R at one distance ``r`` [AU] for the coefficients ``c`` (a row of ``form``)."""
     lr = math.log(r)
     if has_break:
         lrb = math.log(c[2])
@@ -46,7 +55,8 @@ def log_field_rows(r, form, n_rings, has_break, min_factor):
     out = np.empty(r.shape)
     for w in range(r.shape[0]):
         for k in range(r.shape[1]):
-            out[w, k] = log_field(r[w, k], form[w], n_rings, has_break, min_factor)
+            out[w, k] = log_field(r[w, k], _coefficients(form, w), n_rings, has_break,
+                                  min_factor)
     return out
 
 
@@ -158,7 +168,7 @@ def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, bas
     found = np.empty(max_count, np.bool_)
     pos = 0
     for w in range(n_w):
-        c = form[w]
+        c = _coefficients(form, w)
         # scout grid and the profile's features (``_scout_grid``, ``_feature_breaks``)
         m = 0
         for i in range(fixed.shape[0]):
