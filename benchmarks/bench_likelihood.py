@@ -7,8 +7,8 @@ Run:  python benchmarks/bench_likelihood.py [--walkers 64] [--repeat 10] [--aged
     walkers x records x distance nodes x age nodes elements (the node counts the model used),
     timed in the same run; (c) the formulation written by hand (latents as explicit
     parameters, a Python loop over records) per call; (d) scaling over synthetic
-    compilations of 30, 100, 300 and 1000 records; (e) the body-shared spin with upper limits
-    through its compiled kernel against the same rule in array code, same walkers.
+    compilations of 30, 100, 300 and 1000 records; (e) the compiled kernels (distance rule,
+    limits) against the same rules in array code, same walkers.
 """
 from __future__ import annotations
 
@@ -146,26 +146,31 @@ def main(argv=None):
 
 
 def _compiled_versus_array(comp, pset, w, rng, args):
-    """(e) the limits part, whole call, with the compiled kernel and with the array code."""
-    from diskfield import steady
+    """(e) whole calls with both compiled kernels, with the distance rule in array code, and
+    with both in array code (same walkers, same run)."""
+    from diskfield import likelihood, steady
 
-    if steady._kernel() is None:
+    if steady._kernel() is None or likelihood._rule_kernel() is None:
         print("\n(e) numba not importable: the array code is in use")
         return
-    print(f"\n(e) body-shared spin with upper limits, {w} walkers: compiled kernel vs array code"
-          " (whole log_likelihood call)")
-    kernel = steady._kernel()
+    print(f"\n(e) {w} walkers, whole log_likelihood call: both compiled kernels (distance rule "
+          "and limits) / rule in array code / both in array code")
+    kernels = steady._kernel(), likelihood._rule_kernel()
+    print(f"{'profile':12s} {'compiled':>10s} {'rule array':>11s} {'both array':>11s} "
+          f"{'ratio':>6s}")
     for prof in ("smooth", "ring", "two-ring"):
         model = build_model(comp, profile=prof, priors=pset)
         theta = _walkers(model, w, rng)
         t_c = _timed(lambda: model.log_likelihood(theta), args.repeat)
-        steady._compiled = None
         try:
+            likelihood._rule_compiled = None
+            t_r = _timed(lambda: model.log_likelihood(theta), args.repeat)
+            steady._compiled = None
             t_a = _timed(lambda: model.log_likelihood(theta), args.repeat)
         finally:
-            steady._compiled = kernel
-        print(f"{prof:12s} compiled {1e3 * t_c:8.2f} ms   array {1e3 * t_a:8.2f} ms   "
-              f"ratio {t_a / t_c:5.2f}")
+            steady._compiled, likelihood._rule_compiled = kernels
+        print(f"{prof:12s} {1e3 * t_c:8.2f} ms {1e3 * t_r:8.2f} ms {1e3 * t_a:8.2f} ms "
+              f"{t_a / t_c:6.2f}")
 
 
 if __name__ == "__main__":
