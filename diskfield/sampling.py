@@ -33,7 +33,8 @@ Design
   remaining parameters only (30 %; ``field_1au``, ``power_index`` and ``intrinsic_scatter``
   mix in their own 3-d subspace instead of waiting for a good joint 9-d proposal). On the
   demo's two-ring fit the largest τ fell from 160-200 to 95-115 steps and the run from
-  10,000+ steps to 5,500-6,000 (``benchmarks/bench_mixing.py``, two seeds).
+  10,000+ steps to 5,500-7,500 (``benchmarks/bench_mixing.py`` and ``bench_compare.py``,
+  three seeds).
 * The chain runs in chunks held in memory. After every chunk the integrated
   autocorrelation time τ is re-estimated and the whole run state (chain, log-probs,
   blobs, acceptance counts, the legacy ``RandomState`` state) is written to a temporary
@@ -273,6 +274,9 @@ def _moves(model=None):
         return [(emcee.moves.DEMove(), 0.7), (emcee.moves.DEMove(gamma0=1.0), 0.1),
                 (emcee.moves.StretchMove(), 0.2)]
     rest = np.setdiff1d(np.arange(len(model.parameter_names)), np.concatenate(blocks))
+    if not len(rest):  # every sampled parameter belongs to a ring
+        return [(emcee.moves.DEMove(), 0.65), (emcee.moves.DEMove(gamma0=1.0), 0.08),
+                (emcee.moves.StretchMove(), 0.12), (_BlockFromPrior(blocks), 0.15)]
     return [(emcee.moves.DEMove(), 0.35), (emcee.moves.DEMove(gamma0=1.0), 0.08),
             (emcee.moves.StretchMove(), 0.12), (_BlockFromPrior(blocks), 0.15),
             (_SubspaceDE(rest), 0.3)]

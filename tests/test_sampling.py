@@ -294,3 +294,16 @@ def test_ringed_model_run_uses_the_added_moves_and_matches_the_posterior():
     assert run.converged
     assert np.all(np.abs(draws.mean(axis=0) - mean) < 5 * sd / np.sqrt(n_eff))
     assert np.all(np.abs(draws.std(axis=0) - sd) < 5 * sd / np.sqrt(2 * n_eff))
+
+
+def test_move_mixture_without_non_ring_parameters_has_no_empty_subspace_move():
+    """When every sampled parameter belongs to a ring, no subspace move is added (it would
+    propose the walker's own position)."""
+    from diskfield import sampling
+
+    model = ToyModel(("ring_amplitude", "ring_radius", "ring_width"), (Normal(0, 1),) * 3,
+                     lambda t: np.zeros((len(t), 1)), ["b0"])
+    moves = sampling._moves(model)
+    assert {type(m).__name__ for m, _ in moves} == {"DEMove", "StretchMove", "_BlockFromPrior"}
+    assert sum(w for _, w in moves) == pytest.approx(1.0)
+    assert sum(w for _, w in sampling._moves(_ringed_conjugate_model()[0])) == pytest.approx(1.0)
