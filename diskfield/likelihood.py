@@ -62,13 +62,13 @@ def compile_kernels() -> None:
     kernel = _rule_kernel()
     if kernel is None:
         return
+    # ring count and break are run-time values: one specialisation serves every profile
     one = np.ones(1)
-    for n_rings, has_break in ((0, False), (1, False), (2, False), (0, True)):
-        form = np.array([[0.0, 1.0, 2.0, 1.0, 0.5, 2.0, 0.3, 0.5, 4.0, 0.3]])
-        kernel.steady_nodes(form, n_rings, has_break, 1e-9, np.zeros((1, 1)), one[:, None],
-                            0.5 * one, 4.0 * one, np.array([[0.5, 2.0, 4.0]]),
-                            np.array([0.5, 4.0]), np.linspace(-6, 6, 5), np.zeros(1),
-                            np.array([1.0, 3.0]), np.array([0.5]), np.zeros(1), 2)
+    kernel.steady_nodes(np.array([[0.0, 1.0, 2.0, 1.0, 0.5, 2.0, 0.3, 0.5, 4.0, 0.3]]), 2, True,
+                        1e-9, np.zeros((1, 1)), one[:, None], 0.5 * one, 4.0 * one,
+                        np.array([[0.5, 2.0, 4.0]]), np.array([0.5, 4.0]),
+                        np.linspace(-6, 6, 5), np.zeros(1), np.array([1.0, 3.0]),
+                        np.array([0.5]), np.zeros(1), 2)
 
 
 #: Floor on a record's total log variance: a limit without stated error and without
@@ -348,8 +348,8 @@ class Model:
         evaluated. Nodes are ordered by walker, body, panel, node (the dense rule's order).
 
         With ``compiled`` and a profile that declares its power-law form, the rule and ln R
-        at the nodes come from the compiled kernel (:mod:`diskfield._rule_jit`: the same rule,
-        equal to round-off); ``keep`` is then None.
+        at the nodes come from the compiled kernel (:mod:`diskfield._rule_jit`: the same rule;
+        the per-body values agree with the array code to ~1e-9 nat); ``keep`` is then None.
 
         Returns
         -------
@@ -361,8 +361,9 @@ class Model:
             Panels of positive width.
         """
         b = self._bodies
-        if compiled and self.profile.power_law_form is not None and _rule_kernel() is not None:
-            var, stats, r, logw, phi, wi, gi = self._compiled_nodes(p)
+        nodes = self._compiled_nodes(p) if compiled else None
+        if nodes is not None:
+            var, stats, r, logw, phi, wi, gi = nodes
             keep = None
         else:
             var, stats, r, logw, phi, wi, gi, keep = self._array_nodes(p)
@@ -385,15 +386,21 @@ class Model:
         return var, stats, r, logw, self._log_field_at(p, r, wi), wi, gi, keep
 
     def _compiled_nodes(self, p):
-        """The steady rule's nodes through the compiled kernel (profiles with a power-law
-        form): the same rule as :meth:`_distance_rule` and :meth:`_array_nodes`."""
+        """The steady rule's nodes through the compiled kernel: the same rule as
+        :meth:`_distance_rule` and :meth:`_array_nodes`. None when the profile declares no
+        power-law form (or one the kernel does not take) or numba is not available."""
         from .profiles.ring import MIN_RING_FACTOR
 
+        if self.profile.power_law_form is None or _rule_kernel() is None:
+            return None
+        rows = _form_rows(self.profile.power_law_form(p), len(p["intrinsic_scatter"]))
+        if rows is None:
+            return None
+        coef, n_rings, has_break = rows
         b, s = self._bodies, self.settings
         var = np.maximum(b.var_fixed + p["intrinsic_scatter"][:, None, None] ** 2, _MIN_VAR)
         stats = _detection_stats(b.z, var, b.det)
         level, scale = self._level(b, var, stats, None)
-        coef, n_rings, has_break = _form_rows(self.profile.power_law_form(p), len(level))
         r, logw, phi, wi, gi = _rule_kernel().steady_nodes(
             coef, n_rings, has_break, MIN_RING_FACTOR, np.ascontiguousarray(level),
             np.ascontiguousarray(scale), *self._rule_static, s.max_crossings)
@@ -575,10 +582,12 @@ _FEATURE_OFFSETS = np.array([-6.0, -3.0, -1.5, 0.0, 1.5, 3.0, 6.0])
 
 
 def _form_rows(form, n_walkers):
-    """Pack a :class:`~diskfield.profiles.base.PowerLawForm` into the kernel's (W, 10) rows."""
+    """Pack a :class:`~diskfield.profiles.base.PowerLawForm` into the kernel's (W, 10) rows
+    (None for a form the kernel does not take: more than two rings, a half-declared break;
+    :func:`diskfield.testing.check_profile` reports those)."""
     rings = tuple(form.rings)
-    if len(rings) > 2:
-        raise ValueError("the compiled rule takes at most two rings in a PowerLawForm")
+    if len(rings) > 2 or (form.break_radius is None) != (form.index_outer is None):
+        return None
     has_break = form.break_radius is not None
     coef = np.zeros((n_walkers, 10))
     coef[:, 0], coef[:, 1] = form.log_norm, form.index
