@@ -321,9 +321,14 @@ class _TaskRunner:
         def done(i, result, seconds):
             self.say(f"[{time.perf_counter() - self.t0:5.0f} s] {labels[i]}: "
                      f"{_describe(result)}; {seconds:.0f} s")
-        settings = self.settings if jobs == 1 else replace(self.settings, progress=False)
-        self._task_settings = settings
+        self._task_settings = self._settings_for(len(tasks))
         return run_tasks([fn for _, fn in tasks], jobs, done)
+
+    def _settings_for(self, n_tasks):
+        """Sampler settings for a batch of ``n_tasks`` tasks (no progress bars when they run
+        on worker processes)."""
+        jobs = check_jobs(self.jobs, n_tasks)
+        return self.settings if jobs == 1 else replace(self.settings, progress=False)
 
     def fits_and_wide(self, built, evidence, wide):
         # expected cost grows with the number of parameters: submit the largest first
@@ -346,21 +351,17 @@ class _TaskRunner:
 
     def loo_refits(self, fits):
         """Exact leave-one-body-out refits of every flagged body of every model."""
-        from .criteria import PARETO_K_FLAG
-        from .loorefit import bodies_to_refit, finish, refit_task
+        from .loorefit import bodies_to_refit, finish, planned_refits
 
+        settings = self._settings_for(sum(len(bodies_to_refit(f.criteria))
+                                          for f in fits.values()))
         tasks, owner = [], []
         for name, f in fits.items():
-            bodies = bodies_to_refit(f.criteria)
-            if not bodies:
-                self.say(f"[{time.perf_counter() - self.t0:5.0f} s] {name}: no body with "
-                         f"Pareto k > {PARETO_K_FLAG:g}; nothing refitted (PSIS-LOO kept)")
-            for body in bodies:
-                tasks.append((f"{name} LOO refit without {body}",
-                              lambda f=f, b=body: refit_task(
-                                  f, b, seed=self.seed, settings=self._task_settings,
-                                  resume=self.resume)()))
-                owner.append(name)
+            planned = planned_refits(
+                name, f, seed=self.seed, settings=settings, resume=self.resume,
+                say=lambda line: self.say(f"[{time.perf_counter() - self.t0:5.0f} s] {line}"))
+            tasks += planned
+            owner += [name] * len(planned)
         results = self.run(tasks) if tasks else []
         return {name: finish(f, [r for o, r in zip(owner, results) if o == name])
                 for name, f in fits.items()}

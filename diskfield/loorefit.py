@@ -39,7 +39,8 @@ from .records import without_body
 
 __all__ = ["BodyRefit", "refit_seed", "model_without_body", "log_mean_exp_column",
            "lppd", "corrected_loo", "refit_body", "bodies_to_refit", "apply_refits",
-           "refit_note", "checkpoint_path", "refit_task", "finish", "loo_refit"]
+           "refit_note", "checkpoint_path", "refit_task", "planned_refits", "finish",
+           "loo_refit"]
 
 #: Walkers evaluated per call of the full-data model on the refit's draws.
 _BATCH = 256
@@ -256,13 +257,22 @@ def loo_refit(outcome, *, seed: int, settings, resume: bool = False, log=None):
     """
     say = log or (lambda line: None)
     name = outcome.model.config.get("profile", "model")
+    refits = []
+    for label, task in planned_refits(name, outcome, seed=seed, settings=settings,
+                                      resume=resume, say=say):
+        refits.append(task())
+        say(f"{label}: {refits[-1].describe()}")
+    return finish(outcome, refits)
+
+
+def planned_refits(name: str, outcome, *, seed: int, settings, resume: bool, say):
+    """(label, task) for every flagged body of one fit, in body order; ``say`` a line when no
+    body is flagged. Run the tasks one after another (``fit``) or on worker processes
+    (``compare``), then hand the results to :func:`finish`."""
     bodies = bodies_to_refit(outcome.criteria)
     if not bodies:
         say(f"{name}: no body with Pareto k > {_criteria.PARETO_K_FLAG:g}; "
             "nothing refitted (PSIS-LOO kept)")
-    refits = []
-    for body in bodies:
-        r = refit_task(outcome, body, seed=seed, settings=settings, resume=resume)()
-        say(f"{name} LOO refit without {body}: {r.describe()}")
-        refits.append(r)
-    return finish(outcome, refits)
+    return [(f"{name} LOO refit without {body}",
+             refit_task(outcome, body, seed=seed, settings=settings, resume=resume))
+            for body in bodies]
