@@ -127,6 +127,7 @@ class _Bodies:
     hi: np.ndarray         # distance support high (G,) AU
     priors: tuple          # distance Prior per body
     needs_x: np.ndarray    # body needs the numerical spin integral (G,) bool
+    lone_limit: np.ndarray  # body's only record is an upper limit (G,) bool
 
 
 class Model:
@@ -496,14 +497,19 @@ class Model:
             return steady.no_spin(phi, wi, gi, b, var, stats)
         if self.spin == "record":
             return steady.record_spin(phi, wi, gi, b, var)
-        if not np.any(b.needs_x):
+        if not np.any(b.needs_x | b.lone_limit):
             return steady.body_spin(phi, wi, gi, stats)
         out = np.empty_like(phi)
-        nx = b.needs_x[gi]
-        out[~nx] = steady.body_spin(phi[~nx], wi[~nx], gi[~nx], stats)
-        out[nx] = steady.body_spin_with_limits(phi[nx], wi[nx], gi[nx],
-                                               np.flatnonzero(b.needs_x), b, var, stats,
-                                               self.settings.spin_panel_nodes)
+        nx, lone = b.needs_x[gi], b.lone_limit[gi]
+        closed = ~(nx | lone)
+        out[closed] = steady.body_spin(phi[closed], wi[closed], gi[closed], stats)
+        if np.any(lone):
+            # one record: the shared projection is that record's own (EMG survival function)
+            out[lone] = steady.record_spin(phi[lone], wi[lone], gi[lone], b, var)
+        if np.any(nx):
+            out[nx] = steady.body_spin_with_limits(phi[nx], wi[nx], gi[nx],
+                                                   np.flatnonzero(b.needs_x), b, var, stats,
+                                                   self.settings.spin_panel_nodes)
         return out
 
 
@@ -571,7 +577,8 @@ def _pad_bodies(comp, terms, priors, spin):
     return _Bodies(z=np.where(valid, terms.z[safe], 0.0),
                    var_fixed=np.where(valid, terms.var_fixed[safe], 1.0),
                    det=det, lim=is_lim, index=index, lo=support[:, 0], hi=support[:, 1],
-                   priors=priors, needs_x=needs_x & (spin == "body"))
+                   priors=priors, needs_x=needs_x & (spin == "body"),
+                   lone_limit=(n_lim == 1) & ~det.any(axis=1) & (spin == "body"))
 
 
 

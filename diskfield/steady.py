@@ -52,7 +52,9 @@ _Y_GRADES = np.array([-20.0, -9.0, -3.0, -1.0, 0.0, 1.0, 3.0, 9.0, 20.0])
 
 
 def body_spin(phi, wi, gi, stats):
-    """Closed form for bodies of detections only (or a single limit): ln K + EMG density.
+    """Closed form for bodies of detections only: ln K + EMG density (a body whose only
+    record is a limit takes :func:`record_spin`: with one record the shared projection is
+    that record's own).
 
     Parameters
     ----------

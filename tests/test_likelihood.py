@@ -188,6 +188,8 @@ def test_record_and_no_spin_match_adaptive_quadrature(pset, spin):
     ([12.0, 14.0, 20.0], [False, False, True], 0.05),
     ([4.0, 4.0, 6.0], [True, True, True], 0.3),   # limits only
     ([9.0, 2.0], [False, True], 0.01),            # a limit with no error: a sharp step
+    ([5.0], [True], 0.2),                         # a body whose only record is a limit
+    ([30.0], [True], 0.01),
 ])
 def test_body_spin_with_upper_limits_matches_adaptive_quadrature(pset, values, limits, scatter):
     comp = _one_body(values, [0.1 if not lim else 0.0 for lim in limits], limits=limits)
