@@ -323,7 +323,8 @@ class Model:
         stats = _detection_stats(b.z, var, b.det)
         ages = _age_rule(self._ages, self.envelope, p, self.settings, var) if self._ages else None
         level, scale = self._level(b, var, stats, ages)
-        return var, stats, ages, self._distance_rule(p, level, scale)
+        extra = _plateau_levels(b, var, stats, ages) if ages is not None else ()
+        return var, stats, ages, self._distance_rule(p, level, scale, extra)
 
     def _distance_terms(self, p):
         """Distance nodes (W, G, K) and ln(weight x prior x integrand) at them (dense: the
@@ -439,9 +440,11 @@ class Model:
                                           b.det)
             z = z - ages.mean_log_factor   # ln R level of each record at its mean ln T
         if self.spin == "record":
+            # with ages, a record's ln R spreads by its age's Var ln T as well (as above)
+            v_rec = var if ages is None else var + ages.var_log_factor
             zmax = np.nanmax(np.where(b.det, z, -np.inf), axis=-1)
             zbar = np.where(np.isfinite(zmax), zmax, zbar)
-            v = np.where(np.isfinite(zmax), np.min(np.where(b.det, var, np.inf), axis=-1), v)
+            v = np.where(np.isfinite(zmax), np.min(np.where(b.det, v_rec, np.inf), axis=-1), v)
         no_det = ~np.isfinite(v)
         zlim = np.nanmin(np.where(b.lim, z, np.inf), axis=-1)
         vlim = np.min(np.where(b.lim, var, np.inf), axis=-1)
@@ -453,8 +456,11 @@ class Model:
         scale = np.sqrt(np.where(no_det, vlim, v))
         return level, np.where(np.isfinite(scale), scale, 1.0)
 
-    def _distance_rule(self, p, level, scale):
-        """Sorted breakpoints (W, G, B) [AU] of the composite Gauss–Legendre distance rule."""
+    def _distance_rule(self, p, level, scale, extra=()):
+        """Sorted breakpoints (W, G, B) [AU] of the composite Gauss–Legendre distance rule.
+
+        ``extra``: further (level, scale) pairs (W, G) whose crossings get graded breaks too
+        (the plateaus of a time-dependent field, :func:`_plateau_levels`)."""
         s, b = self.settings, self._bodies
         w = len(level)
         lo = np.broadcast_to(b.lo, level.shape)
@@ -476,6 +482,14 @@ class Model:
         graded = quad.graded_breaks(cross, width, lo[..., None], hi[..., None], s.grade_factors)
         parts = [np.broadcast_to(base, (w,) + base.shape), graded.reshape(w, len(b.lo), -1),
                  _edge_breaks(self.profile, p, level, scale, b, s.grade_factors)]
+        for lev_k, sc_k in extra:
+            cross_k, slope_k, found_k = _crossings(self.profile, p, scout, phi_s, lev_k, b,
+                                                   s.max_crossings)
+            width_k = np.where(found_k, sc_k[..., None] / np.maximum(np.abs(slope_k), 1e-12),
+                               0.0)
+            cross_k = np.where(found_k, cross_k, lo[..., None])
+            parts.append(quad.graded_breaks(cross_k, width_k, lo[..., None], hi[..., None],
+                                            s.grade_factors).reshape(w, len(b.lo), -1))
         if features is not None:
             parts.append(np.clip(features[:, None, :], lo[..., None], hi[..., None]))
         return np.sort(np.concatenate(parts, axis=-1), axis=-1)
@@ -584,6 +598,30 @@ def _pad_bodies(comp, terms, priors, spin):
 
 
 # ---------------------------------------------------------------------- node placement
+#: Spread of ln T over a body's age nodes, in units of its records' own width, above which the
+#: extremes of ln T get crossing levels of their own (numerical convention).
+_PLATEAU_SPREAD = 2.0
+
+
+def _plateau_levels(b, var, stats, ages):
+    """Crossing levels (W, G) of the highest and lowest ln T a body's records meet.
+
+    A field that dissipates within an age window has (nearly) two plateaus of ln T, and a
+    precise record then gives the distance integrand two sharp features, where ln R meets the
+    record's level at each plateau; the level at the mean ln T with the width inflated by
+    Var ln T lies between them (seen: 0.03 nat off on a one-record body). These levels carry
+    the records' own width. Bodies whose ln T spreads by less than ``_PLATEAU_SPREAD`` widths
+    get no extra level (NaN: no crossing).
+    """
+    zbar, v, _ = stats
+    data = (b.det | b.lim)[None, ..., None] & np.isfinite(ages.logw)
+    lt_hi = np.max(np.where(data, ages.log_factor, -np.inf), axis=(-2, -1))
+    lt_lo = np.min(np.where(data, ages.log_factor, np.inf), axis=(-2, -1))
+    no_det = ~np.isfinite(v)
+    z = np.where(no_det, np.nanmin(np.where(b.lim, b.z, np.inf), axis=-1), zbar)
+    scale = np.sqrt(np.where(no_det, np.min(np.where(b.lim, var, np.inf), axis=-1), v))
+    wide = (lt_hi - lt_lo) > _PLATEAU_SPREAD * scale
+    return tuple((np.where(wide, z - lt, np.nan), scale) for lt in (lt_hi, lt_lo))
 #: Breakpoints across a ring, in ring widths either side of its centre (numerical convention).
 _FEATURE_OFFSETS = np.array([-6.0, -3.0, -1.5, 0.0, 1.5, 3.0, 6.0])
 
