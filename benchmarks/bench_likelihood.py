@@ -4,8 +4,9 @@ Run:  python benchmarks/bench_likelihood.py [--walkers 64] [--repeat 10] [--aged
 
 (a) time per vectorised ``log_likelihood`` call on the demo compilation for each profile and
     envelope; (b) the floor of the direct scheme, a bare ``scipy.special.log_ndtr`` over
-    walkers x records x distance nodes x age nodes elements (the node counts the model used),
-    timed in the same run; (c) the formulation written by hand (latents as explicit
+    walkers x records x distance nodes x age nodes elements (the nodes of positive weight the
+    model used, summed per walker, body and record; K_r and K_t print the mean distance nodes
+    per body and age nodes per record), timed in the same run; (c) the formulation written by hand (latents as explicit
     parameters, a Python loop over records) per call; (d) scaling over synthetic
     compilations of 30, 100, 300 and 1000 records; (e) the compiled kernels (distance rule,
     limits) against the same rules in array code, same walkers.
@@ -52,16 +53,25 @@ def _walkers(model, n, rng):
 
 
 def _nodes(model, theta):
-    """Mean distance nodes per body and age nodes per record the model used at theta."""
-    r, _ = model.body_distance_posterior(theta)
-    k_age = 1
-    if model.envelope.time_dependent:
-        from diskfield.aged import _age_rule
+    """Elements the direct scheme evaluates at theta: the sum over walkers, bodies and their
+    records of (distance nodes of positive weight) x (age nodes of positive weight), and the
+    mean node counts (distance nodes per body, age nodes per record).
 
-        var, _, _, _ = model._setup(model.params(theta))
-        rule = _age_rule(model._ages, model.envelope, model.params(theta), model.settings, var)
-        k_age = rule.logw.shape[-1]
-    return r.shape[-1], k_age
+    Only nodes of positive weight count: the dense rule's zero-width panels (unused slots,
+    breaks clipped to a support) are padding that no direct scheme would evaluate.
+    """
+    from diskfield import quadrature
+
+    _, _, ages, breaks = model._setup(model.params(theta))
+    _, logw = quadrature.panel_rule(breaks, model.settings.panel_nodes)
+    k_r = np.isfinite(logw).sum(axis=-1)                              # (W, G)
+    valid = model._bodies.index >= 0                                  # (G, n)
+    if ages is None:
+        k_t = np.broadcast_to(valid, k_r.shape + valid.shape[1:]).astype(float)
+    else:
+        k_t = np.where(valid, np.isfinite(ages.logw).sum(axis=-1), 0)  # (W, G, n)
+    elements = int((k_r * k_t.sum(axis=-1)).sum())
+    return elements, k_r.mean(), k_t.sum() / (valid.sum() * len(k_r))
 
 
 def _hand_written(model, theta_1d, latents):
@@ -87,11 +97,11 @@ def _row(comp, pset, prof, env, spin, w, rng, args):
     rep, rounds = (args.aged_repeat, 1) if aged else (args.repeat, 3)
     t_a = _timed(lambda: model.log_likelihood(theta), rep, rounds)
     t_1 = _timed(lambda: model.log_likelihood(theta[0]), rep, rounds)
-    k_r, k_t = _nodes(model, theta)
-    elems = np.linspace(-5, 5, w * len(comp.records) * k_r * k_t)
+    n_elem, k_r, k_t = _nodes(model, theta)
+    elems = np.linspace(-5, 5, n_elem)
     t_b = _timed(lambda: special.log_ndtr(elems), 1, rounds)
-    print(f"{prof:12s} {env:12s} {spin:6s} {1e3 * t_a:9.2f} {1e3 * t_1:9.2f} {k_r:5d} {k_t:5d} "
-          f"{1e3 * t_b:9.2f} {t_a / t_b:8.2f}", flush=True)
+    print(f"{prof:12s} {env:12s} {spin:6s} {1e3 * t_a:9.2f} {1e3 * t_1:9.2f} {k_r:5.1f} "
+          f"{k_t:5.1f} {1e3 * t_b:9.2f} {t_a / t_b:8.2f}", flush=True)
 
 
 def main(argv=None):
