@@ -25,7 +25,7 @@ import numpy as np
 from . import quadrature as quad
 from . import steady
 from ._lkcommon import _detection_stats, _expand, _finite_support
-from .aged import _age_priors, _age_rule, _integrand_aged
+from .aged import _age_priors, _age_rule, _integrand_aged, log_factor_spread
 from .errors import CompilationError, OptionError, PriorFileError, Problem
 from .ordering import label_ordering
 from .priorspec import Uniform
@@ -598,11 +598,6 @@ def _pad_bodies(comp, terms, priors, spin):
 
 
 # ---------------------------------------------------------------------- node placement
-#: Spread of ln T over a body's age nodes, in units of its records' own width, above which the
-#: extremes of ln T get crossing levels of their own (numerical convention).
-_PLATEAU_SPREAD = 2.0
-
-
 def _plateau_levels(b, var, stats, ages):
     """Crossing levels (W, G) of the highest and lowest ln T a body's records meet.
 
@@ -610,18 +605,11 @@ def _plateau_levels(b, var, stats, ages):
     precise record then gives the distance integrand two sharp features, where ln R meets the
     record's level at each plateau; the level at the mean ln T with the width inflated by
     Var ln T lies between them (seen: 0.03 nat off on a one-record body). These levels carry
-    the records' own width. Bodies whose ln T spreads by less than ``_PLATEAU_SPREAD`` widths
-    get no extra level (NaN: no crossing).
+    the records' own width. Bodies whose ln T spreads by less than
+    :data:`diskfield.aged._PLATEAU_SPREAD` widths get no extra level (NaN: no crossing).
     """
-    zbar, v, _ = stats
-    data = (b.det | b.lim)[None, ..., None] & np.isfinite(ages.logw)
-    lt_hi = np.max(np.where(data, ages.log_factor, -np.inf), axis=(-2, -1))
-    lt_lo = np.min(np.where(data, ages.log_factor, np.inf), axis=(-2, -1))
-    no_det = ~np.isfinite(v)
-    z = np.where(no_det, np.nanmin(np.where(b.lim, b.z, np.inf), axis=-1), zbar)
-    scale = np.sqrt(np.where(no_det, np.min(np.where(b.lim, var, np.inf), axis=-1), v))
-    wide = (lt_hi - lt_lo) > _PLATEAU_SPREAD * scale
-    return tuple((np.where(wide, z - lt, np.nan), scale) for lt in (lt_hi, lt_lo))
+    lt_hi, lt_lo, z, width, wide = log_factor_spread(b, var, stats, ages)
+    return tuple((np.where(wide, z - lt, np.nan), width) for lt in (lt_hi, lt_lo))
 #: Breakpoints across a ring, in ring widths either side of its centre (numerical convention).
 _FEATURE_OFFSETS = np.array([-6.0, -3.0, -1.5, 0.0, 1.5, 3.0, 6.0])
 
