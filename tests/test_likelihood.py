@@ -662,6 +662,7 @@ def _aged_body_spin_reference(model, theta, z, var, limits, n_u=6001, n_t=1501, 
     ([0.5, 0.3], [False, False], 0.00155, 0.110, 1.945),   # 6.5 e-folds within 0.1 Myr
     ([12.0, 15.0, 9.0], [False, False, False], 0.00155, 0.110, 1.945),
     ([12.0, 3.0], [False, True], 0.2565, 0.1665, 2.571),   # a mild drop, a sharp limit
+    ([0.5, 0.3], [False, False], 0.001, 0.05, 1.945),      # the priors' sharpest corner
 ])
 def test_aged_shared_spin_body_matches_a_dense_reference(pset, values, limits, residual, edge,
                                                          time):
