@@ -309,14 +309,14 @@ def _integrand_aged_body_spin(phi, b, var, ages, s, skip=None):
 
     A (walker, body) whose ln T spreads over more than ``_SHARP_SPREAD`` widths of its
     narrowest record
-    (:func:`log_factor_spread`) takes ``_WIDE_SPIN_FACTOR`` times the spin nodes: a field
+    (:func:`log_factor_range`) takes ``_WIDE_SPIN_FACTOR`` times the spin nodes: a field
     that drops by many record widths within the age window makes f bimodal in X, which one
     unimodal proposal with 16 nodes resolved only to 0.05 nat (0.3 nat for a drop of 7
     e-folds in 0.05 Myr; ``tests/test_likelihood.py``); a drop of 9 widths was within 1e-3.
     """
     veff = var + ages.var_log_factor
     zbar, v, _ = _detection_stats(b.z - ages.mean_log_factor, veff, b.det)
-    lt_hi, lt_lo, _, _, _ = log_factor_spread(b, var, _detection_stats(b.z, var, b.det), ages)
+    lt_hi, lt_lo = log_factor_range(b, ages)
     # the narrowest record sets the scale (a limit without stated error is the sharpest)
     narrow = np.sqrt(np.min(np.where(b.det | b.lim, var, np.inf), axis=-1))
     wide = (lt_hi - lt_lo) > _SHARP_SPREAD * narrow
@@ -352,18 +352,13 @@ _SHARP_SPREAD = 20.0
 _WIDE_SPIN_FACTOR = 4
 
 
-def log_factor_spread(b, var, stats, ages):
-    """Highest and lowest ln T a body's records meet (W, G), the records' level z (precision-
-    weighted mean of the detections, else the lowest limit), their width, and whether ln T
-    spreads over more than ``_PLATEAU_SPREAD`` widths."""
-    zbar, v, _ = stats
+def log_factor_range(b, ages):
+    """Highest and lowest ln T (W, G) at the age nodes of positive weight of a body's
+    records (the spread that decides the plateau levels and the extra spin nodes)."""
     data = (b.det | b.lim)[None, ..., None] & np.isfinite(ages.logw)
     lt_hi = np.max(np.where(data, ages.log_factor, -np.inf), axis=(-2, -1))
     lt_lo = np.min(np.where(data, ages.log_factor, np.inf), axis=(-2, -1))
-    no_det = ~np.isfinite(v)
-    z = np.where(no_det, np.nanmin(np.where(b.lim, b.z, np.inf), axis=-1), zbar)
-    width = np.sqrt(np.where(no_det, np.min(np.where(b.lim, var, np.inf), axis=-1), v))
-    return lt_hi, lt_lo, z, width, (lt_hi - lt_lo) > _PLATEAU_SPREAD * width
+    return lt_hi, lt_lo
 
 
 #: Elements (points x spin nodes x records x age nodes) per chunk of the aged body-spin sums:

@@ -25,7 +25,7 @@ import numpy as np
 from . import quadrature as quad
 from . import steady
 from ._lkcommon import _detection_stats, _expand, _finite_support
-from .aged import _age_priors, _age_rule, _integrand_aged, log_factor_spread
+from .aged import _PLATEAU_SPREAD, _age_priors, _age_rule, _integrand_aged, log_factor_range
 from .errors import CompilationError, OptionError, PriorFileError, Problem
 from .ordering import label_ordering
 from .priorspec import Uniform
@@ -318,13 +318,18 @@ class Model:
 
     def _setup(self, p):
         """Variances (W, G, n), detection statistics, age rule and distance breakpoints."""
+        var, stats, ages, level, scale = self._levels(p)
+        extra = _plateau_levels(self._bodies, var, stats, ages) if ages is not None else ()
+        return var, stats, ages, self._distance_rule(p, level, scale, extra)
+
+    def _levels(self, p):
+        """Variances (W, G, n), detection statistics, age rule, and each body's ln-field level
+        and its scale (W, G): what both distance rules (array and compiled) start from."""
         b = self._bodies
         var = np.maximum(b.var_fixed + p["intrinsic_scatter"][:, None, None] ** 2, _MIN_VAR)
         stats = _detection_stats(b.z, var, b.det)
         ages = _age_rule(self._ages, self.envelope, p, self.settings, var) if self._ages else None
-        level, scale = self._level(b, var, stats, ages)
-        extra = _plateau_levels(b, var, stats, ages) if ages is not None else ()
-        return var, stats, ages, self._distance_rule(p, level, scale, extra)
+        return (var, stats, ages) + self._level(b, var, stats, ages)
 
     def _distance_terms(self, p):
         """Distance nodes (W, G, K) and ln(weight x prior x integrand) at them (dense: the
@@ -399,13 +404,10 @@ class Model:
         if rows is None:
             return None
         coef, n_rings, has_break = rows
-        b, s = self._bodies, self.settings
-        var = np.maximum(b.var_fixed + p["intrinsic_scatter"][:, None, None] ** 2, _MIN_VAR)
-        stats = _detection_stats(b.z, var, b.det)
-        level, scale = self._level(b, var, stats, None)
+        var, stats, _, level, scale = self._levels(p)   # steady: no age rule
         r, logw, phi, wi, gi = _rule_kernel().steady_nodes(
             coef, n_rings, has_break, MIN_RING_FACTOR, np.ascontiguousarray(level),
-            np.ascontiguousarray(scale), *self._rule_static, s.max_crossings)
+            np.ascontiguousarray(scale), *self._rule_static, self.settings.max_crossings)
         return var, stats, r, logw, phi, wi, gi
 
     def _log_field_at(self, p, r, wi):
@@ -465,31 +467,28 @@ class Model:
         w = len(level)
         lo = np.broadcast_to(b.lo, level.shape)
         hi = np.broadcast_to(b.hi, level.shape)
-        base = b.lo[:, None] + (b.hi - b.lo)[:, None] * np.linspace(0, 1, s.base_panels + 1)
+        base = _base_breaks(b, s)
         features = _feature_breaks(p, self.profile)
         scout = _scout_grid(b, features, p, s)
         phi_s = self.profile.log_field(scout, _expand(p, 1))
-        cross, slope, found = _crossings(self.profile, p, scout, phi_s, level, b,
-                                         s.max_crossings)
-        # an unused crossing slot gets zero width: its graded breaks all sit at lo
-        width = np.where(found, scale[..., None] / np.maximum(np.abs(slope), 1e-12), 0.0)
+
+        def slots(lev, sc):
+            return _crossing_slots(self.profile, p, scout, phi_s, lev, sc, b, s.max_crossings)
+
+        def graded(cr, wd):  # unused slots (NaN) put all their breaks at lo: empty panels
+            return quad.graded_breaks(np.where(np.isnan(cr), lo[..., None], cr), wd,
+                                      lo[..., None], hi[..., None],
+                                      s.grade_factors).reshape(w, len(b.lo), -1)
+
+        cross, width, found = slots(level, scale)
         # the closest approach of ln R to the level is a crossing when there is one; without
         # one it is where the integrand peaks (a Gaussian tail): it takes the first slot
         edge, edge_width = _approach_point(self.profile, p, scout, phi_s, level, scale, b)
         cross[..., 0] = np.where(found[..., 0], cross[..., 0], edge)
         width[..., 0] = np.where(found[..., 0], width[..., 0], edge_width)
-        cross = np.where(np.isnan(cross), lo[..., None], cross)  # unused slots: empty panels
-        graded = quad.graded_breaks(cross, width, lo[..., None], hi[..., None], s.grade_factors)
-        parts = [np.broadcast_to(base, (w,) + base.shape), graded.reshape(w, len(b.lo), -1),
+        parts = [np.broadcast_to(base, (w,) + base.shape), graded(cross, width),
                  _edge_breaks(self.profile, p, level, scale, b, s.grade_factors)]
-        for lev_k, sc_k in extra:
-            cross_k, slope_k, found_k = _crossings(self.profile, p, scout, phi_s, lev_k, b,
-                                                   s.max_crossings)
-            width_k = np.where(found_k, sc_k[..., None] / np.maximum(np.abs(slope_k), 1e-12),
-                               0.0)
-            cross_k = np.where(found_k, cross_k, lo[..., None])
-            parts.append(quad.graded_breaks(cross_k, width_k, lo[..., None], hi[..., None],
-                                            s.grade_factors).reshape(w, len(b.lo), -1))
+        parts += [graded(*slots(lev_k, sc_k)[:2]) for lev_k, sc_k in extra]
         if features is not None:
             parts.append(np.clip(features[:, None, :], lo[..., None], hi[..., None]))
         return np.sort(np.concatenate(parts, axis=-1), axis=-1)
@@ -608,7 +607,12 @@ def _plateau_levels(b, var, stats, ages):
     the records' own width. Bodies whose ln T spreads by less than
     :data:`diskfield.aged._PLATEAU_SPREAD` widths get no extra level (NaN: no crossing).
     """
-    lt_hi, lt_lo, z, width, wide = log_factor_spread(b, var, stats, ages)
+    zbar, v, _ = stats
+    no_det = ~np.isfinite(v)
+    z = np.where(no_det, np.nanmin(np.where(b.lim, b.z, np.inf), axis=-1), zbar)
+    width = np.sqrt(np.where(no_det, np.min(np.where(b.lim, var, np.inf), axis=-1), v))
+    lt_hi, lt_lo = log_factor_range(b, ages)
+    wide = (lt_hi - lt_lo) > _PLATEAU_SPREAD * width
     return tuple((np.where(wide, z - lt, np.nan), width) for lt in (lt_hi, lt_lo))
 #: Breakpoints across a ring, in ring widths either side of its centre (numerical convention).
 _FEATURE_OFFSETS = np.array([-6.0, -3.0, -1.5, 0.0, 1.5, 3.0, 6.0])
@@ -637,10 +641,14 @@ def _rule_static(b, s):
     C-contiguous float array: numba compiles one specialisation per array layout, and
     :func:`compile_kernels` compiles this one."""
     x, w = quad.gauss_legendre_unit(s.panel_nodes)
-    base = b.lo[:, None] + (b.hi - b.lo)[:, None] * np.linspace(0, 1, s.base_panels + 1)
-    parts = (b.lo, b.hi, base, _fixed_scout(b, s), np.linspace(-6.0, 6.0, s.ring_scout),
+    parts = (b.lo, b.hi, _base_breaks(b, s), _fixed_scout(b, s), np.linspace(-6.0, 6.0, s.ring_scout),
              _FEATURE_OFFSETS, s.grade_factors, x, np.log(w))
     return tuple(np.array(a, dtype=float, order="C") for a in parts)
+
+
+def _base_breaks(b, s):
+    """Breaks of ``s.base_panels`` equal panels across each body's support (G, P + 1) [AU]."""
+    return b.lo[:, None] + (b.hi - b.lo)[:, None] * np.linspace(0, 1, s.base_panels + 1)
 
 
 def _fixed_scout(b, s):
@@ -677,6 +685,15 @@ def _scout_grid(b, features, p, s):
         pts.append(p["break_radius"][:, None])
     grid = np.clip(np.concatenate(pts, axis=1), lo, hi)
     return np.sort(grid, axis=1)
+
+
+def _crossing_slots(profile, p, scout, phi_s, level, scale, b, max_count):
+    """Crossings of ``level`` (W, G, M; NaN in unused slots), the widths of their graded
+    breaks (``scale`` over ln R's slope; 0 in an unused slot, so its breaks all sit at lo),
+    and the found mask."""
+    cross, slope, found = _crossings(profile, p, scout, phi_s, level, b, max_count)
+    width = np.where(found, scale[..., None] / np.maximum(np.abs(slope), 1e-12), 0.0)
+    return cross, width, found
 
 
 def _crossings(profile, p, scout, phi_s, level, b, max_count):
