@@ -91,6 +91,20 @@ def _log_age_pdf(ages, t):
     return out
 
 
+def _log_age_pdf_at(ages, t, gi, ri):
+    """ln p(t) at flat times ``t`` (N,) of padded records (``gi``, ``ri``) (N,) [1/Myr]."""
+    a, b = ages.a[gi, ri], ages.b[gi, ri]
+    normal = ages.kind[gi, ri] == 0
+    z = (t - a) / b
+    out = np.where(normal, -0.5 * z * z - np.log(b) - LN_SQRT_2PI,
+                   -np.log(np.where(normal, 1.0, b - a)))
+    for prior, mask in ages.window.values():
+        sel = mask[gi, ri]
+        if np.any(sel):
+            out[sel] = prior.log_prob(t[sel])
+    return out
+
+
 #: Normal age priors are integrated over mean +- 9 sd (convention: the mass beyond, 2e-19, is
 #: far below the 0.01-nat budget even for a record 30 nats into its prior's tail).
 _NORMAL_CUT = 9.0
@@ -144,14 +158,27 @@ def _age_rule(ages, envelope, p, s, var=None):
         _measure_breaks(grid, envelope, pe, ages, np.sqrt(np.maximum(var, 1e-10)), lo, hi),
         np.broadcast_to(np.stack([lo, hi, np.clip(0.0, lo, hi)], axis=-1), shape + (3,))],
         axis=-1)
-    t, logw = quad.panel_rule(np.sort(breaks, axis=-1), s.age_nodes)
-    # zero-width panels (slots a record does not need) carry no weight: drop them
-    order = np.argsort(~np.isfinite(logw), axis=-1, kind="stable")
-    n_q = max(int(np.isfinite(logw).sum(axis=-1).max()), 1)
-    t = np.take_along_axis(t, order[..., :n_q], axis=-1)
-    logw = np.take_along_axis(logw, order[..., :n_q], axis=-1) + _log_age_pdf(ages, t)
+    breaks = np.sort(breaks, axis=-1)
+    # zero-width panels (slots a record does not need) carry no weight: only the others'
+    # nodes are laid out (each row's first, in order) and evaluated; the rest is padding
+    h = np.diff(breaks, axis=-1)
+    keep = h > 0
+    slot = np.cumsum(keep, axis=-1) - 1                              # panel's rank in its row
+    n_q = max(int(keep.sum(axis=-1).max()) * s.age_nodes, 1)
+    wi, gi, ri, ki = np.nonzero(keep)
+    x, wx = quad.gauss_legendre_unit(s.age_nodes)
+    hk = h[wi, gi, ri, ki][:, None]
+    t_flat = (breaks[wi, gi, ri, ki][:, None] + hk * x).ravel()
+    col = (slot[wi, gi, ri, ki][:, None] * s.age_nodes + np.arange(s.age_nodes)).ravel()
+    at = tuple(np.repeat(i, s.age_nodes) for i in (wi, gi, ri))
+    lw_flat = (np.log(hk) + np.log(wx)).ravel() + _log_age_pdf_at(ages, t_flat, at[1], at[2])
+    lf_flat = envelope.log_factor(t_flat[:, None], {k: v[at[0]][:, None]
+                                                    for k, v in p.items()})[:, 0]
+    logw = np.full(shape + (n_q,), -np.inf)
+    lf = np.zeros(shape + (n_q,))
+    logw[at + (col,)] = lw_flat
+    lf[at + (col,)] = lf_flat
     logw = logw - quad.log_sum_exp(logw, axis=-1)[..., None]   # exactly normalised
-    lf = envelope.log_factor(t, pe)
     wts = np.exp(logw)
     mean = (wts * lf).sum(-1)
     var_lf = (wts * (lf - mean[..., None]) ** 2).sum(-1)
@@ -217,7 +244,9 @@ def _integrand_aged(phi, b, var, ages, spin, s):
     """
     if spin == "body":
         lone = (b.det | b.lim).sum(axis=1) == 1
-        out = _integrand_aged_body_spin(phi, b, var, ages, s, skip=lone)
+        body_rule = _integrand_aged_body_table if _BODY_SPIN_RULE == "table" else \
+            _integrand_aged_body_spin
+        out = body_rule(phi, b, var, ages, s, skip=lone)
         if np.any(lone):
             out[:, lone] = _records_dedup(phi, b, var, ages, "record", lone)[:, lone]
         return out
@@ -293,6 +322,78 @@ def _flat_chunk(phi, b, var, spin, wi, gi, ri, lw, lf, starts):
         v0 = vv[starts]
         lp += np.where(is_lim[starts], 0.0, -0.5 * np.log(v0) - LN_SQRT_2PI)
     return lp
+
+
+#: The shared-spin rule with ages: "table" (:mod:`diskfield.agedspin`, the default) or
+#: "proposal" (:func:`_integrand_aged_body_spin`, kept as an independent reference for tests
+#: and benchmarks).
+_BODY_SPIN_RULE = "table"
+
+
+def _integrand_aged_body_table(phi, b, var, ages, s, skip=None):
+    """Body-shared spin with ages by one cumulative table in y = phi - X per (walker, body)
+    (:mod:`diskfield.agedspin`), shape (W, G, K); bodies in ``skip`` are left -inf."""
+    from .agedspin import body_spin_table
+
+    out = np.full(phi.shape, -np.inf)
+    first = np.ones(phi.shape, bool)
+    first[..., 1:] = phi[..., 1:] != phi[..., :-1]
+    for g in range(phi.shape[1]):
+        if skip is not None and skip[g]:
+            continue
+        out[:, g] = body_spin_table(phi[:, g], first[:, g], b, var, ages, g,
+                                    s.spin_panel_nodes, _records_at(b, var, ages, g))
+    # copy each distinct node's value onto its repeats (runs of equal phi along K)
+    src = np.where(first, np.arange(phi.shape[-1]), 0)
+    np.maximum.accumulate(src, axis=-1, out=src)
+    return np.take_along_axis(out, src, axis=-1)
+
+
+#: The compiled age sums (:mod:`diskfield._aged_jit`), imported on first use; None: the array
+#: code (:func:`_records_sum`; tests set it to compare both).
+_compiled = ...
+
+
+def _kernel():
+    global _compiled
+    if _compiled is ...:
+        try:
+            from . import _aged_jit as module
+        except Exception:  # pragma: no cover - numba is a declared dependency
+            module = None
+        _compiled = module
+    return _compiled
+
+
+def _records_at(b, var, ages, g):
+    """``records(y, wi)``: sum over body ``g``'s records of ln sum_q w_q p(record | ln B =
+    y + ln T(t_q)) at points ``y`` (P,) of walkers ``wi`` (P,)."""
+    kernel = _kernel()
+    if kernel is not None:
+        data = np.flatnonzero(b.det[g] | b.lim[g])
+        live = np.isfinite(ages.logw[:, g, data])                    # (W, M, Q), live first
+        n_q = live.sum(axis=-1)
+        q_max = max(int(n_q.max()), 1)
+        args = (b.z[g, data], np.ascontiguousarray(var[:, g, data]), b.lim[g, data],
+                np.ascontiguousarray(ages.log_factor[:, g, data, :q_max]),
+                np.ascontiguousarray(ages.logw[:, g, data, :q_max]), n_q)
+        return lambda y, wi: kernel.records_sum(np.ascontiguousarray(y, float), wi, *args)
+    kinds = [rec for rec in (_body_records(b, var, ages, g, key) for key in ("det", "lim"))
+             if rec is not None]
+
+    def records(y, wi):
+        out = np.zeros(len(y))
+        for rec in kinds:
+            need = rec["n_q"][wi]
+            for q in np.unique(need):
+                pts = np.flatnonzero(need == q)
+                step = max(1, _CHUNK_ELEMENTS // (rec["lf"].shape[2] * int(q)))
+                for c in range(0, len(pts), step):
+                    sl = pts[c:c + step]
+                    out[sl] += _records_sum(y[sl, None], wi[sl], rec, int(q))[:, 0]
+        return out
+
+    return records
 
 
 def _integrand_aged_body_spin(phi, b, var, ages, s, skip=None):
