@@ -365,6 +365,16 @@ def _kernel():
     return _compiled
 
 
+def compile_kernels() -> None:
+    """Compile (or load from numba's cache) the age sums now, in the layout models pass."""
+    kernel = _kernel()
+    if kernel is None:
+        return
+    one = np.zeros(1, np.int64)
+    kernel.records_sum(np.zeros(1), one, np.zeros(1), np.ones((1, 1)), np.zeros(1, bool),
+                       np.zeros((1, 1, 1)), np.zeros((1, 1, 1)), np.ones((1, 1), np.int64))
+
+
 def _records_at(b, var, ages, g):
     """``records(y, wi)``: sum over body ``g``'s records of ln sum_q w_q p(record | ln B =
     y + ln T(t_q)) at points ``y`` (P,) of walkers ``wi`` (P,)."""

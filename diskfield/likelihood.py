@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import quadrature as quad
-from . import steady
+from . import aged, steady
 from ._lkcommon import _detection_stats, _expand, _finite_support
 from .aged import _PLATEAU_SPREAD, _age_priors, _age_rule, _integrand_aged, log_factor_range
 from .errors import CompilationError, OptionError, PriorFileError, Problem
@@ -59,6 +59,7 @@ def compile_kernels() -> None:
     it (or racing to write numba's cache) on first use. No-op without numba.
     """
     steady.compile_kernels()
+    aged.compile_kernels()
     kernel = _rule_kernel()
     if kernel is None:
         return

@@ -110,3 +110,19 @@ def test_table_and_proposal_rules_agree_where_both_are_accurate(demo_model, monk
     assert np.all(np.isfinite(table))
     close = np.abs(table - proposal) < 0.01
     assert close.mean() > 0.95
+
+
+def test_compile_kernels_compiles_the_age_sums_the_model_uses(demo_model):
+    """compile_kernels (run before forking workers) must compile the very specialisation of
+    the age sums a model calls (numba compiles one per argument layout; common practice, no
+    source)."""
+    import diskfield.likelihood as lk
+
+    kernel = aged._kernel()
+    if kernel is None:
+        pytest.skip("numba not importable")
+    lk.compile_kernels()
+    before = set(kernel.records_sum.signatures)
+    rng = np.random.default_rng(5)
+    demo_model.log_likelihood(np.column_stack([p.sample(rng, 4) for p in demo_model.priors]))
+    assert set(kernel.records_sum.signatures) == before
