@@ -3,18 +3,18 @@
 Each record's age is integrated on its own prior by a composite Gauss-Legendre rule in time
 whose panels equidistribute how fast the integrand can change: steps of ln T of at most two
 record sds, steps of the prior's log density (its tails) and of time (per walker). Bodies
-with the shared spin projection integrate it numerically against a truncated-normal proposal
-(importance mapping).
+with the shared spin projection take one cumulative table in y = ln R - X per (walker, body)
+(:mod:`diskfield.agedspin`), whose age sums are taken here.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 
 import numpy as np
 from scipy import special
 
 from . import quadrature as quad
-from ._lkcommon import _detection_stats, _expand, _finite_support
+from ._lkcommon import _expand, _finite_support
 from .errors import CompilationError
 from .priorspec import Uniform
 from .recording import LN_SQRT_2PI, emg_logpdf, emg_logsf
@@ -122,6 +122,9 @@ _LEVEL_STEP = 3.0
 #: within 0.05 Myr left 0.013-0.014 nat, with 2 up to 0.013, with 1 at most 0.0024
 #: (tests/test_likelihood.py; convention). It triples those records' age panels in the drop.
 _SHARP_LEVEL_STEP = 1.0
+#: A record counts as sharp when its ln T spreads over more than this many of its sds
+#: (numerical convention).
+_SHARP_SPREAD = 20.0
 _LOG_PDF_STEP = 10.0
 _WIDTH_STEP = 3.0
 #: Most panels per record, and points of the uniform time grid on which the measure is summed.
@@ -244,9 +247,7 @@ def _integrand_aged(phi, b, var, ages, spin, s):
     """
     if spin == "body":
         lone = (b.det | b.lim).sum(axis=1) == 1
-        body_rule = _integrand_aged_body_table if _BODY_SPIN_RULE == "table" else \
-            _integrand_aged_body_spin
-        out = body_rule(phi, b, var, ages, s, skip=lone)
+        out = _integrand_aged_body_table(phi, b, var, ages, s, skip=lone)
         if np.any(lone):
             out[:, lone] = _records_dedup(phi, b, var, ages, "record", lone)[:, lone]
         return out
@@ -322,12 +323,6 @@ def _flat_chunk(phi, b, var, spin, wi, gi, ri, lw, lf, starts):
         v0 = vv[starts]
         lp += np.where(is_lim[starts], 0.0, -0.5 * np.log(v0) - LN_SQRT_2PI)
     return lp
-
-
-#: The shared-spin rule with ages: "table" (:mod:`diskfield.agedspin`, the default) or
-#: "proposal" (:func:`_integrand_aged_body_spin`, kept as an independent reference for tests
-#: and benchmarks).
-_BODY_SPIN_RULE = "table"
 
 
 def _integrand_aged_body_table(phi, b, var, ages, s, skip=None):
@@ -406,170 +401,24 @@ def _records_at(b, var, ages, g):
     return records
 
 
-def _integrand_aged_body_spin(phi, b, var, ages, s, skip=None):
-    """Body-shared spin with ages: X by nodes in the CDF of a truncated-normal proposal.
-
-    The proposal q(X) is the e^-X N(...) form of the steady case with each record's ln T
-    replaced by its age-prior mean and its variance added; the integrand f/q is exact
-    (importance mapping), so the proposal only has to cover where f lives.
-
-    The work is done body by body on the distinct distance nodes only (zero-width distance
-    panels repeat one node; their values are copied), with each body's own detections,
-    limits and age nodes of non-zero weight, in chunks of points sized for the cache: the
-    same sums as one (W, G, K, Q_x, M, Q_age) array, without materialising it.
-
-    A (walker, body) whose ln T spreads over more than ``_SHARP_SPREAD`` widths of its
-    narrowest record
-    (:func:`log_factor_range`) takes ``_WIDE_SPIN_FACTOR`` times the spin nodes: a field
-    that drops by many record widths within the age window makes f bimodal in X, which one
-    unimodal proposal with 16 nodes resolved only to 0.05 nat (0.3 nat for a drop of 7
-    e-folds in 0.05 Myr; ``tests/test_likelihood.py``); a drop of 9 widths was within 1e-3.
-    """
-    veff = var + ages.var_log_factor
-    zbar, v, _ = _detection_stats(b.z - ages.mean_log_factor, veff, b.det)
-    lt_hi, lt_lo = log_factor_range(b, ages)
-    # the narrowest record sets the scale (a limit without stated error is the sharpest)
-    narrow = np.sqrt(np.min(np.where(b.det | b.lim, var, np.inf), axis=-1))
-    wide = (lt_hi - lt_lo) > _SHARP_SPREAD * narrow
-    s_wide = replace(s, spin_nodes=_WIDE_SPIN_FACTOR * s.spin_nodes)
-    out = np.full(phi.shape, -np.inf)
-    first = np.ones(phi.shape, bool)
-    first[..., 1:] = phi[..., 1:] != phi[..., :-1]
-    for g in range(phi.shape[1]):
-        if skip is not None and skip[g]:
-            continue
-        wi, ki = np.nonzero(first[:, g])
-        sel = wide[wi, g]
-        for part, rule in ((~sel, s), (sel, s_wide)):
-            if np.any(part):
-                w_p, k_p = wi[part], ki[part]
-                out[w_p, g, k_p] = _body_spin_points(phi[w_p, g, k_p], w_p, g, b, var, ages,
-                                                     zbar[:, g], v[:, g], rule)
-    # copy each distinct node's value onto its repeats (runs of equal phi along K)
-    src = np.where(first, np.arange(phi.shape[-1]), 0)
-    np.maximum.accumulate(src, axis=-1, out=src)
-    return np.take_along_axis(out, src, axis=-1)
-
-
 #: Spread of ln T over a body's age nodes, in units of its records' own width, above which the
 #: field counts as changing within the age window: the distance rule adds crossing levels at
-#: the extremes of ln T, and the shared-spin rule takes more nodes (numerical convention).
+#: the extremes of ln T (numerical convention).
 _PLATEAU_SPREAD = 2.0
-
-#: Spread of ln T, in record widths, above which the shared-spin rule with ages takes
-#: ``_WIDE_SPIN_FACTOR`` times the spin nodes (numerical convention; 64 nodes met the
-#: 0.01-nat budget on a drop of 40 widths where 16 were 0.05 nat off, 16 sufficed for 9).
-_SHARP_SPREAD = 20.0
-_WIDE_SPIN_FACTOR = 4
 
 
 def log_factor_range(b, ages):
     """Highest and lowest ln T (W, G) at the age nodes of positive weight of a body's
-    records (the spread that decides the plateau levels and the extra spin nodes)."""
+    records (the spread that decides the plateau levels)."""
     data = (b.det | b.lim)[None, ..., None] & np.isfinite(ages.logw)
     lt_hi = np.max(np.where(data, ages.log_factor, -np.inf), axis=(-2, -1))
     lt_lo = np.min(np.where(data, ages.log_factor, np.inf), axis=(-2, -1))
     return lt_hi, lt_lo
 
 
-#: Elements (points x spin nodes x records x age nodes) per chunk of the aged body-spin sums:
-#: temporaries of ~2 MB stay in the cache (convention, measured in benchmarks/bench_aged.py).
+#: Elements (points x records x age nodes) per chunk of the array age sums: temporaries of
+#: ~2 MB stay in the cache (convention, measured in benchmarks/bench_aged.py).
 _CHUNK_ELEMENTS = 1 << 18
-
-#: The spin proposal's variance is this multiple of the Laplace variance at the integrand's
-#: mode (convention): with ages the integrand over X is a mixture whose tails can reach beyond
-#: a proposal of its own curvature, where nodes in the proposal's CDF are too sparse (seen:
-#: 0.1 nat with one limit, viscous envelope); four times the variance keeps f/q bounded.
-_SPIN_WIDTH = 4.0
-
-
-#: Breakpoints of the spin rule around each limit's step, in units of its width (convention).
-_STEP_GRADES = np.array([-3.0, -1.0, 0.0, 1.0, 3.0])
-
-
-def _spin_rule(ph, wi, g, b, var, ages, has, mu_q, sd, log_tail, s):
-    """ln s_k (P, Q_x) of the spin nodes in s = P_q(X' > X), and their ln weights.
-
-    Bodies with detections: ``spin_nodes`` Gauss nodes on [0, 1] (the proposal sits at the
-    integrand's mode, :func:`_spin_mode`). Limits alone: the proposal is X ~ Exp(1) and the
-    integrand e^-X prod Phi((X - X*) / w) has its mass just past the steps X* = phi + E[ln T]
-    - z (width w = sqrt(S^2 + Var ln T)), often deep in the proposal's tail; panels of
-    ``spin_panel_nodes`` nodes then split [0, 1] at s(X* + k w), k in ``_STEP_GRADES``, for
-    each limit. Working in s (not 1 - s) keeps steps deep in the tail resolved.
-    """
-    lim = np.flatnonzero(b.lim[g])
-    if not len(lim) or has.all():
-        u, w = quad.gauss_legendre_unit(s.spin_nodes)
-        shape = (len(ph), len(u))
-        return np.broadcast_to(np.log1p(-u), shape), np.broadcast_to(np.log(w), shape)
-    step = ph[:, None] + ages.mean_log_factor[wi][:, g, lim] - b.z[g, lim]        # (P, L)
-    width = np.sqrt(var[wi][:, g, lim] + ages.var_log_factor[wi][:, g, lim])
-    pts = (step[..., None] + width[..., None] * _STEP_GRADES).reshape(len(ph), -1)
-    log_s = np.where(has[:, None], special.log_ndtr((mu_q - pts) / sd) - log_tail, -pts)
-    ends = np.broadcast_to(np.array([0.0, 1.0]), (len(ph), 2))
-    breaks = np.sort(np.concatenate([ends, np.exp(np.minimum(log_s, 0.0))], axis=1), axis=1)
-    nodes, logw = quad.panel_rule(breaks, s.spin_panel_nodes)
-    with np.errstate(divide="ignore"):
-        return np.log(nodes), logw
-
-
-def _spin_mode(ph, wi, g, b, var, ages, zbar, v):
-    """Mode and curvature of ln f(X) with each record's ln T at its mean (Var ln T added to
-    its variance), (P,) each: Newton steps from the detections' mode phi - zbar - v.
-
-    ln f = -X - (phi - X - zbar)^2 / 2v + sum_limits ln Phi((X - X*) / w) is concave, so the
-    steps converge; without limits the start is the mode. A limit in conflict with the
-    detections moves the mode between them, where neither alone would put the nodes.
-    """
-    mode = ph - zbar[wi] - v[wi]
-    curv = 1.0 / v[wi]
-    lim = np.flatnonzero(b.lim[g])
-    if not len(lim):
-        return mode, curv
-    step = ph[:, None] + ages.mean_log_factor[wi][:, g, lim] - b.z[g, lim]        # (P, L)
-    width = np.sqrt(var[wi][:, g, lim] + ages.var_log_factor[wi][:, g, lim])
-    for _ in range(_MODE_STEPS):
-        y = (mode[:, None] - step) / width
-        mills = np.exp(-0.5 * y * y - LN_SQRT_2PI - special.log_ndtr(y))  # phi(y) / Phi(y)
-        grad = -1.0 + (ph - mode - zbar[wi]) / v[wi] + (mills / width).sum(-1)
-        curv = 1.0 / v[wi] + (mills * (y + mills) / width ** 2).sum(-1)
-        mode = mode + np.clip(grad / curv, -3.0 * np.sqrt(v[wi]), 3.0 * np.sqrt(v[wi]))
-    return mode, curv
-
-
-#: Newton steps of :func:`_spin_mode` (convention: each moves at most 3 sds of the detections).
-_MODE_STEPS = 6
-
-
-def _body_spin_points(ph, wi, g, b, var, ages, zbar, v, s):
-    """ln F at the points ``ph`` (P,) of body ``g``, walker of each point ``wi`` (P,)."""
-    has = np.isfinite(v[wi])
-    mode, curv = _spin_mode(ph, wi, g, b, var, ages, np.where(np.isfinite(v), zbar, 0.0),
-                            np.where(np.isfinite(v), v, 1.0))
-    sd = np.sqrt(_SPIN_WIDTH / np.where(has, curv, 1.0))[:, None]
-    mu_q = np.where(has, mode, 0.0)[:, None]
-    log_tail = special.log_ndtr(mu_q / sd)
-    log_s, logw = _spin_rule(ph, wi, g, b, var, ages, has, mu_q, sd, log_tail, s)
-    x = np.where(has[:, None], mu_q - sd * special.ndtri_exp(log_tail + log_s),
-                 -log_s)                                             # (P, Q_x)
-    log_q = np.where(has[:, None], -0.5 * ((x - mu_q) / sd) ** 2 - np.log(sd) - LN_SQRT_2PI
-                     - log_tail, -x)
-    log_f = -x - log_q + logw
-    n_spin = x.shape[1]
-    kinds = [_body_records(b, var, ages, g, key) for key in ("det", "lim")]
-    for rec in kinds:
-        if rec is None:
-            continue
-        # walkers need from a few to hundreds of age nodes: points are taken in groups of
-        # equal need, each summing only its own nodes
-        need = rec["n_q"][wi]
-        for q in np.unique(need):
-            pts = np.flatnonzero(need == q)
-            step = max(1, _CHUNK_ELEMENTS // (n_spin * rec["lf"].shape[2] * int(q)))
-            for c in range(0, len(pts), step):
-                sl = pts[c:c + step]
-                log_f[sl] += _records_sum(ph[sl, None] - x[sl], wi[sl], rec, int(q))
-    return quad.log_sum_exp(log_f, axis=-1)
 
 
 def _body_records(b, var, ages, g, key):

@@ -93,12 +93,11 @@ class QuadratureSettings:
         Extra scout points across r0 ± 6 w of each ring.
     max_crossings : int
         Largest number of crossings of one level per body (5 covers two rings).
-    spin_nodes : int
-        Nodes of the numerical spin integral (bodies with upper limits).
     age_nodes : int
         Nodes per panel of an age integral.
     spin_panel_nodes : int
-        Gauss–Legendre nodes per panel of the body-shared spin integral with upper limits.
+        Gauss–Legendre nodes per panel of the body-shared spin integral (steady: bodies
+        with upper limits; time-dependent: every body of two or more records).
     grade_factors : tuple of float
         Breakpoints at these multiples of the integrand's width either side of each crossing
         and of the closest approach.
@@ -109,7 +108,6 @@ class QuadratureSettings:
     scout_nodes: int = 48
     ring_scout: int = 33
     max_crossings: int = 5
-    spin_nodes: int = 16
     age_nodes: int = 6
     grade_factors: tuple = (1.0, 3.0, 9.0)
     spin_panel_nodes: int = 5
