@@ -177,14 +177,24 @@ def _age_rule(ages, envelope, p, s, var=None):
     lw_flat = (np.log(hk) + np.log(wx)).ravel() + _log_age_pdf_at(ages, t_flat, at[1], at[2])
     lf_flat = envelope.log_factor(t_flat[:, None], {k: v[at[0]][:, None]
                                                     for k, v in p.items()})[:, 0]
+    # per record (runs of equal (walker, body, record) in the flat order): normalise the
+    # weights exactly, then the mean and variance of ln T
+    row = np.ravel_multi_index(at, shape)
+    starts = np.flatnonzero(np.r_[True, row[1:] != row[:-1]])
+    counts = np.diff(np.r_[starts, len(row)])
+    top = np.maximum.reduceat(lw_flat, starts)
+    lw_flat -= np.repeat(np.log(np.add.reduceat(np.exp(lw_flat - np.repeat(top, counts)),
+                                                starts)) + top, counts)
+    wts = np.exp(lw_flat)
+    mean_r = np.add.reduceat(wts * lf_flat, starts)
+    var_r = np.add.reduceat(wts * (lf_flat - np.repeat(mean_r, counts)) ** 2, starts)
+    mean, var_lf = np.zeros(shape), np.zeros(shape)
+    mean.ravel()[row[starts]] = mean_r
+    var_lf.ravel()[row[starts]] = var_r
     logw = np.full(shape + (n_q,), -np.inf)
     lf = np.zeros(shape + (n_q,))
     logw[at + (col,)] = lw_flat
     lf[at + (col,)] = lf_flat
-    logw = logw - quad.log_sum_exp(logw, axis=-1)[..., None]   # exactly normalised
-    wts = np.exp(logw)
-    mean = (wts * lf).sum(-1)
-    var_lf = (wts * (lf - mean[..., None]) ** 2).sum(-1)
     return _AgeRule(log_factor=lf, logw=logw, mean_log_factor=mean, var_log_factor=var_lf)
 
 
