@@ -391,8 +391,10 @@ def _records_at(b, var, ages, g):
         q_max = max(int(n_q.max()), 1)
         args = (b.z[g, data], np.ascontiguousarray(var[:, g, data]), b.lim[g, data],
                 np.ascontiguousarray(ages.log_factor[:, g, data, :q_max]),
-                np.ascontiguousarray(ages.logw[:, g, data, :q_max]), n_q)
-        return lambda y, wi: kernel.records_sum(np.ascontiguousarray(y, float), wi, *args)
+                np.ascontiguousarray(ages.logw[:, g, data, :q_max]), np.ascontiguousarray(n_q))
+        # C-contiguous arguments throughout: the layout compile_kernels compiled
+        return lambda y, wi: kernel.records_sum(np.ascontiguousarray(y, float),
+                                                np.ascontiguousarray(wi, np.int64), *args)
     kinds = [rec for rec in (_body_records(b, var, ages, g, key) for key in ("det", "lim"))
              if rec is not None]
 
