@@ -215,8 +215,11 @@ def _measure_breaks(grid, envelope, pe, ages, sd, lo, hi):
     The measure is summed on ``grid`` and inverted by linear interpolation (one
     ``searchsorted`` over all rows, each row offset to keep the whole increasing).
     """
-    lf = envelope.log_factor(grid, pe)
-    lp = _log_age_pdf(ages, grid)
+    # records with one age prior share their grid: ln T and ln p are evaluated once per prior
+    first, inverse, sub = _distinct_priors(ages)
+    grid_u = grid[:, first[0], first[1]]                               # (W, U, N)
+    lf = envelope.log_factor(grid_u, {k: v[:, :1, 0] for k, v in pe.items()})[:, inverse]
+    lp = _log_age_pdf(sub, grid_u)[:, inverse]
     scale = np.where(ages.kind == 0, ages.b, (hi - lo) / _WIDTH_STEP)[..., None]
     sharp = (lf.max(axis=-1) - lf.min(axis=-1)) > _SHARP_SPREAD * sd
     step = np.where(sharp, _SHARP_LEVEL_STEP, _LEVEL_STEP)
@@ -237,6 +240,22 @@ def _measure_breaks(grid, envelope, pe, ages, sd, lo, hi):
     g0, g1 = np.take_along_axis(grid, k - 1, axis=-1), np.take_along_axis(grid, k, axis=-1)
     step = np.clip(np.where(f1 > f0, (target - f0) / np.where(f1 > f0, f1 - f0, 1.0), 0.0), 0, 1)
     return np.where(target < 1.0, g0 + step * (g1 - g0), hi[..., None])
+
+
+def _distinct_priors(ages):
+    """The distinct age priors of the padded records: the (body, record) index of each one's
+    first record (2, U), each record's prior (G, n) as an index into them, and the distinct
+    priors as an _AgePriors of shape (U,)."""
+    win = np.full(ages.kind.shape, -1.0)
+    for k, (_, mask) in enumerate(ages.window.values()):
+        win[mask] = k
+    key = np.stack([ages.kind, ages.a, ages.b, win], axis=-1).reshape(-1, 4)
+    _, idx, inverse = np.unique(key, axis=0, return_index=True, return_inverse=True)
+    first = np.unravel_index(idx, ages.kind.shape)
+    sub = _AgePriors(kind=ages.kind[first], a=ages.a[first], b=ages.b[first],
+                     window={k: (prior, mask[first]) for k, (prior, mask)
+                             in ages.window.items()})
+    return first, inverse.reshape(ages.kind.shape), sub
 
 
 def _envelope_features(p):
