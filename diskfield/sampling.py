@@ -392,7 +392,10 @@ def _fresh_state(model, settings, seed, logp, n_walkers):
 
 
 def _tau(chain):
-    return emcee.autocorr.integrated_time(chain, c=5, tol=0, quiet=True)
+    """Integrated autocorrelation time per parameter; NaN for a parameter whose chain has not
+    moved yet (emcee divides by its zero variance; callers treat NaN as not converged)."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return emcee.autocorr.integrated_time(chain, c=5, tol=0, quiet=True)
 
 
 def _burn_in(chain, settings):

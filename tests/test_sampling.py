@@ -307,3 +307,18 @@ def test_move_mixture_without_non_ring_parameters_has_no_empty_subspace_move():
     assert {type(m).__name__ for m, _ in moves} == {"DEMove", "StretchMove", "_BlockFromPrior"}
     assert sum(w for _, w in moves) == pytest.approx(1.0)
     assert sum(w for _, w in sampling._moves(_ringed_conjugate_model()[0])) == pytest.approx(1.0)
+
+
+def test_tau_of_a_chain_that_has_not_moved_is_nan_without_a_warning():
+    """A parameter whose walkers have not moved has zero variance: its τ is NaN (read as not
+    converged) and no RuntimeWarning reaches the user's terminal."""
+    import warnings
+
+    from diskfield.sampling import _tau
+
+    chain = np.zeros((200, 8, 2))
+    chain[:, :, 1] = np.random.default_rng(0).normal(size=(200, 8))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        tau = _tau(chain)
+    assert np.isnan(tau[0]) and np.isfinite(tau[1])
