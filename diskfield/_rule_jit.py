@@ -21,6 +21,9 @@ import math
 import numpy as np
 from numba import njit
 
+from ._steady_jit import log_ndtr
+
+
 @njit(cache=True)
 def _coefficients(form, w):
     """Row ``w`` of ``form`` as a tuple: passed by value, so the per-node calls below carry
@@ -112,7 +115,65 @@ def _tail_width(centre, level, scale, c, n_rings, has_break, mf):
 @njit(cache=True)
 def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixed,
                  ring_u, offsets, grades, gl_x, gl_logw, max_count):
-    """Nodes of the distance rule with positive weight, flat, ordered by walker, body, panel.
+    """Nodes of the distance rule with positive weight, flat, ordered by walker, body, panel
+    (:func:`_rule` without the fused closed form; see there for the parameters).
+
+    Returns
+    -------
+    r, logw, phi : ndarray (N,)
+        Nodes [AU], ln weights, ln R there.
+    wi, gi : ndarray of int (N,)
+        Walker and body of each node.
+    """
+    n_w, n_g = level.shape
+    none = np.zeros(n_g, np.int64)
+    empty = np.zeros((n_w, n_g))
+    r, lw, phi, wi, gi, _ = _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi,
+                                  base, fixed, ring_u, offsets, grades, gl_x, gl_logw,
+                                  max_count, False, none, np.zeros((n_g, 4)), empty, empty,
+                                  empty)
+    return r, lw, phi, wi, gi
+
+
+@njit(cache=True)
+def steady_loglike(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixed,
+                   ring_u, offsets, grades, gl_x, gl_logw, max_count, closed, prior, zbar, v,
+                   ln_k):
+    """The distance rule with the closed-form bodies' integrals done in the same pass.
+
+    A body with ``closed[g]`` (body-shared spin, detections only) is integrated here:
+    sum over its nodes of weight x prior density x K EMG(ln R - zbar; V), in logs. Every
+    other body's nodes are returned flat as in :func:`steady_nodes`, with ln weight + ln
+    prior density in place of the ln weight, for the caller's integrands.
+
+    Parameters
+    ----------
+    closed : ndarray of int (G,)
+        1 for the bodies integrated here.
+    prior : ndarray (G, 4)
+        Each body's distance prior as ln p(r) = c - k ln r - (r - mu)^2 s^2 / 2, rows
+        ``[c, k, mu, s]`` (``likelihood._prior_form``; valid inside the support, where
+        every node lies).
+    zbar, v, ln_k : ndarray (W, G)
+        Detections' precision-weighted mean, variance and ln K (closed bodies).
+
+    Returns
+    -------
+    r, log_term, phi, wi, gi : ndarray (N,)
+        The other bodies' nodes, ln weight + ln prior, ln R, walker and body.
+    ll : ndarray (W, G)
+        The closed bodies' log-likelihoods (0 for the others).
+    """
+    return _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixed,
+                 ring_u, offsets, grades, gl_x, gl_logw, max_count, True, closed, prior, zbar,
+                 v, ln_k)
+
+
+@njit(cache=True)
+def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixed, ring_u,
+          offsets, grades, gl_x, gl_logw, max_count, fused, closed, prior, zbar, v, ln_k):
+    """The distance rule, one pass per (walker, body); with ``fused`` the closed bodies'
+    integrals too (:func:`steady_loglike`).
 
     Parameters
     ----------
@@ -133,12 +194,8 @@ def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, bas
     max_count : int
         Crossing slots per body.
 
-    Returns
-    -------
-    r, logw, phi : ndarray (N,)
-        Nodes [AU], ln weights, ln R there.
-    wi, gi : ndarray of int (N,)
-        Walker and body of each node.
+    fused, closed, prior, zbar, v, ln_k
+        See :func:`steady_loglike`.
     """
     n_w, n_g = level.shape
     n_f = grades.shape[0]
@@ -166,6 +223,8 @@ def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, bas
     cross = np.empty(max_count)
     width = np.empty(max_count)
     found = np.empty(max_count, np.bool_)
+    ll = np.zeros((n_w, n_g))
+    terms = np.empty((n_brk - 1) * n)
     pos = 0
     for w in range(n_w):
         c = _coefficients(form, w)
@@ -255,6 +314,15 @@ def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, bas
                 m += 1
             brk[:m].sort()
             # Gauss–Legendre nodes of the panels of positive width
+            here = fused and closed[g] == 1
+            if fused:
+                p_c, p_k, p_mu, p_s = prior[g, 0], prior[g, 1], prior[g, 2], prior[g, 3]
+            if here:
+                zb, vv, lk = zbar[w, g], v[w, g], ln_k[w, g]
+                lk += 0.5 * vv            # the EMG's V / 2
+                zb += vv                  # its argument (d - V) / sqrt V, with d = ph - zbar
+                isd = 1.0 / math.sqrt(vv)
+            k_t = 0
             for i in range(m - 1):
                 h = brk[i + 1] - brk[i]
                 if not h > 0:
@@ -262,10 +330,34 @@ def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, bas
                 lh = math.log(h)
                 for j in range(n):
                     x = brk[i] + h * gl_x[j]
+                    lw = lh + gl_logw[j]
+                    ph = log_field(x, c, n_rings, has_break, min_factor)
+                    if fused:
+                        dx = (x - p_mu) * p_s
+                        lw += p_c - 0.5 * dx * dx
+                        if p_k != 0.0:
+                            lw -= p_k * math.log(x)
+                    if here:
+                        # K EMG(ph - zbar; V) = ln K - (ph - zbar) + V/2 + ln Phi((ph - zbar
+                        # - V) / sqrt V) (recording.emg_logpdf)
+                        terms[k_t] = lw + lk - (ph - zb + vv) + log_ndtr((ph - zb) * isd)
+                        k_t += 1
+                        continue
                     r_out[pos] = x
-                    lw_out[pos] = lh + gl_logw[j]
-                    phi_out[pos] = log_field(x, c, n_rings, has_break, min_factor)
+                    lw_out[pos] = lw
+                    phi_out[pos] = ph
                     wi_out[pos] = w
                     gi_out[pos] = g
                     pos += 1
-    return r_out[:pos], lw_out[:pos], phi_out[:pos], wi_out[:pos], gi_out[:pos]
+            if here:
+                top = -np.inf
+                for k in range(k_t):
+                    top = max(top, terms[k])
+                if top == -np.inf or top == np.inf:
+                    ll[w, g] = top
+                    continue
+                acc = 0.0
+                for k in range(k_t):
+                    acc += math.exp(terms[k] - top)
+                ll[w, g] = top + math.log(acc)
+    return r_out[:pos], lw_out[:pos], phi_out[:pos], wi_out[:pos], gi_out[:pos], ll

@@ -65,11 +65,13 @@ def compile_kernels() -> None:
         return
     # ring count and break are run-time values: one specialisation serves every profile
     one = np.ones(1)
-    kernel.steady_nodes(np.array([[0.0, 1.0, 2.0, 1.0, 0.5, 2.0, 0.3, 0.5, 4.0, 0.3]]), 2, True,
-                        1e-9, np.zeros((1, 1)), one[:, None], 0.5 * one, 4.0 * one,
-                        np.array([[0.5, 2.0, 4.0]]), np.array([0.5, 4.0]),
-                        np.linspace(-6, 6, 5), np.zeros(1), np.array([1.0, 3.0]),
-                        np.array([0.5]), np.zeros(1), 2)
+    args = (np.array([[0.0, 1.0, 2.0, 1.0, 0.5, 2.0, 0.3, 0.5, 4.0, 0.3]]), 2, True, 1e-9,
+            np.zeros((1, 1)), one[:, None], 0.5 * one, 4.0 * one, np.array([[0.5, 2.0, 4.0]]),
+            np.array([0.5, 4.0]), np.linspace(-6, 6, 5), np.zeros(1), np.array([1.0, 3.0]),
+            np.array([0.5]), np.zeros(1), 2)
+    kernel.steady_nodes(*args)
+    kernel.steady_loglike(*args, np.ones(1, np.int64), np.zeros((1, 4)), np.zeros((1, 1)),
+                          np.ones((1, 1)), np.zeros((1, 1)))
 
 
 #: Floor on a record's total log variance: a limit without stated error and without
@@ -157,6 +159,7 @@ class Model:
         self._ages = _age_priors(comp, priorset) if envelope.time_dependent else None
         self._obliquity = getattr(priorset, "spin_obliquity", None)
         self._rule_static = _rule_static(self._bodies, self.settings)
+        self._fused = _fused_static(self._bodies, spin, self._obliquity)
         self.config = {"profile": profile.name, "envelope": envelope.name, "spin": spin,
                        "prior_files": [str(f) for f in getattr(priorset, "files", ())],
                        "label_ordering": self.ordering.describe()}
@@ -304,7 +307,15 @@ class Model:
     def _body_loglike(self, p):
         if self.envelope.time_dependent:
             return quad.log_sum_exp(self._distance_terms(p)[1], axis=-1)
+        fused = self._fused_loglike(p)
+        if fused is not None:
+            return fused
         _, terms, wi, gi, _ = self._steady_terms(p)
+        return self._node_sums(terms, wi, gi, len(p["intrinsic_scatter"]))
+
+    def _node_sums(self, terms, wi, gi, n_walkers, out=None):
+        """ln sum exp of the flat node terms per (walker, body), (W, G); with ``out``, only
+        the (walker, body) pairs that have nodes are written into it."""
         row = wi * self.n_bodies + gi
         start = np.flatnonzero(np.r_[True, row[1:] != row[:-1]])
         # every (walker, body) has nodes: the base panels across its support have width > 0
@@ -313,7 +324,39 @@ class Model:
         with np.errstate(divide="ignore"):
             total = np.log(np.add.reduceat(np.exp(terms - np.repeat(top, np.diff(
                 np.r_[start, len(row)]))), start)) + top
-        return total.reshape(len(p["intrinsic_scatter"]), self.n_bodies)
+        if out is None:
+            return total.reshape(n_walkers, self.n_bodies)
+        out.ravel()[row[start]] = total
+        return out
+
+    def _fused_loglike(self, p):
+        """Steady envelope, body-shared spin: the compiled distance rule integrates the
+        closed-form bodies in the same pass (``_rule_jit.steady_loglike``); the bodies with
+        upper limits take their integrands here on the nodes it returns. The same rule,
+        integrands and sums as :meth:`_steady_terms` (tested equal to ~1e-12). None when the
+        compiled rule does not apply (no power-law form, numba missing, spin not shared, an
+        obliquity prior, a distance prior of another form)."""
+        from .profiles.ring import MIN_RING_FACTOR
+
+        if self._fused is None or self.profile.power_law_form is None or _rule_kernel() is None:
+            return None
+        rows = _form_rows(self.profile.power_law_form(p), len(p["intrinsic_scatter"]))
+        if rows is None:
+            return None
+        coef, n_rings, has_break = rows
+        var, stats, _, level, scale = self._levels(p)
+        closed, prior = self._fused
+        zbar, v, ln_k = (np.ascontiguousarray(np.where(np.isfinite(stats[1]), a, d))
+                         for a, d in zip(stats, (0.0, 1.0, 0.0)))
+        r, terms, phi, wi, gi, ll = _rule_kernel().steady_loglike(
+            coef, n_rings, has_break, MIN_RING_FACTOR, np.ascontiguousarray(level),
+            np.ascontiguousarray(scale), *self._rule_static, self.settings.max_crossings,
+            closed, prior, zbar, v, ln_k)
+        if len(r):
+            terms = terms + self._log_integrand(phi, self._bodies, var, stats, None, p,
+                                                at=(wi, gi))
+            self._node_sums(terms, wi, gi, len(ll), out=ll)
+        return ll
 
     def _setup(self, p):
         """Variances (W, G, n), detection statistics, age rule and distance breakpoints."""
@@ -632,6 +675,43 @@ def _form_rows(form, n_walkers):
     for k, ring in enumerate(rings):
         coef[:, 4 + 3 * k:7 + 3 * k] = np.column_stack(ring)
     return coef, len(rings), has_break
+
+
+def _fused_static(b, spin, obliquity):
+    """The fused rule's fixed inputs: which bodies it integrates (body-shared spin,
+    detections only: (G,) int) and each body's distance prior as rows [c, k, mu, s] of
+    ln p(r) = c - k ln r - (r - mu)^2 s^2 / 2 (G, 4); None when it does not apply (another
+    spin mode, an obliquity prior, a prior of another form)."""
+    if spin != "body" or obliquity is not None:
+        return None
+    rows = [_prior_form(prior) for prior in b.priors]
+    if any(row is None for row in rows):
+        return None
+    closed = (~(b.needs_x | b.lone_limit)).astype(np.int64)
+    return closed, np.array(rows, dtype=float, order="C")
+
+
+def _prior_form(prior):
+    """[c, k, mu, s] with ln p(r) = c - k ln r - (r - mu)^2 s^2 / 2 inside the support, for
+    the distance-prior families that have it (uniform, log-uniform, truncated normal);
+    checked against ``prior.log_prob`` at points across the support (None on a mismatch or
+    another family)."""
+    from .priorspec import LogUniform, TruncatedNormal
+
+    if isinstance(prior, Uniform):
+        row = [-np.log(prior.high - prior.low), 0.0, 0.0, 0.0]
+    elif isinstance(prior, LogUniform):
+        row = [-np.log(np.log(prior.high / prior.low)), 1.0, 0.0, 0.0]
+    elif isinstance(prior, TruncatedNormal):
+        row = [-np.log(prior.sd) - 0.5 * np.log(2.0 * np.pi) - prior._lognorm, 0.0,
+               prior.mean, 1.0 / prior.sd]
+    else:
+        return None
+    lo, hi = prior.support
+    x = lo + (hi - lo) * np.linspace(0.01, 0.99, 7)
+    c, k, mu, sc = row
+    form = c - k * np.log(x) - 0.5 * ((x - mu) * sc) ** 2
+    return row if np.allclose(form, prior.log_prob(x), rtol=1e-12, atol=1e-12) else None
 
 
 def _rule_static(b, s):

@@ -500,6 +500,53 @@ def test_compiled_rule_follows_the_array_rule(pset, profile):
     np.testing.assert_allclose(ll_compiled[ok], ll_array[ok], rtol=0, atol=1e-8)
 
 
+@pytest.mark.parametrize("profile", ["smooth", "ring", "two-ring", "broken", "accretion",
+                                     "accretion-wind"])
+def test_fused_rule_equals_the_rule_and_integrands_apart(pset, profile):
+    """The fused kernel (closed-form bodies integrated in the rule's pass) gives the per-body
+    log-likelihoods of the compiled rule's nodes with the array integrands and sums, to
+    round-off (common practice, no source: two implementations held equal)."""
+    import diskfield.likelihood as lk
+
+    if lk._rule_kernel() is None:
+        pytest.skip("numba not importable")
+    model = _demo_model(profile, pset)
+    assert model._fused is not None and model._fused[0].sum() < model.n_bodies  # both kinds
+    rng = np.random.default_rng(3)
+    theta = np.column_stack([p.sample(rng, 64) for p in model.priors])
+    p = model.params(theta[model._in_support(theta)])
+    fused = model._fused_loglike(p)
+    _, terms, wi, gi, _ = model._steady_terms(p)
+    apart = model._node_sums(terms, wi, gi, len(fused))
+    assert np.array_equal(np.isfinite(fused), np.isfinite(apart))
+    ok = np.isfinite(apart)
+    np.testing.assert_allclose(fused[ok], apart[ok], rtol=1e-12, atol=1e-10)
+
+
+@pytest.mark.parametrize("family,args", [
+    ("Uniform", (0.5, 3.0)), ("LogUniform", (0.5, 30.0)),
+    ("TruncatedNormal", (2.0, 0.7, 0.8, 4.0)), ("TruncatedNormal", (9.0, 2.0, 3.0, 40.0))])
+def test_prior_form_reproduces_the_distance_prior(family, args):
+    """The fused rule's closed form of a distance prior equals its log density across the
+    support (derived from each family's density)."""
+    from diskfield import priorspec
+    from diskfield.likelihood import _prior_form
+
+    dist = getattr(priorspec, family)(*args)
+    c, k, mu, s = _prior_form(dist)
+    lo, hi = dist.support
+    r = np.linspace(lo, hi, 101)[1:-1]
+    np.testing.assert_allclose(c - k * np.log(r) - 0.5 * ((r - mu) * s) ** 2,
+                               dist.log_prob(r), rtol=1e-13, atol=1e-13)
+
+
+def test_prior_form_declines_other_families():
+    from diskfield.likelihood import _prior_form
+    from diskfield.priorspec import HalfNormal
+
+    assert _prior_form(HalfNormal(2.0, high=10.0)) is None
+
+
 @pytest.mark.parametrize("profile", ["smooth", "two-ring", "broken", "accretion"])
 def test_compiled_profile_equals_the_declared_form(pset, profile):
     """The kernel's ln R equals the profile's PowerLawForm in array code, which check_profile
@@ -563,12 +610,14 @@ def test_compile_kernels_compiles_the_specialisation_the_model_uses(pset):
     if kernel is None:
         pytest.skip("numba not importable")
     lk.compile_kernels()
-    before = set(kernel.steady_nodes.signatures)
+    before = (set(kernel.steady_nodes.signatures), set(kernel.steady_loglike.signatures))
     for profile in ("smooth", "two-ring", "broken"):
-        model = _demo_model(profile, pset)
-        rng = np.random.default_rng(5)
-        model.log_likelihood(np.column_stack([p.sample(rng, 4) for p in model.priors]))
-    assert set(kernel.steady_nodes.signatures) == before
+        for spin in ("body", "record"):   # the fused rule, and the nodes for other integrands
+            model = _demo_model(profile, pset, spin=spin)
+            rng = np.random.default_rng(5)
+            model.log_likelihood(np.column_stack([p.sample(rng, 4) for p in model.priors]))
+    assert (set(kernel.steady_nodes.signatures),
+            set(kernel.steady_loglike.signatures)) == before
 
 
 @pytest.mark.parametrize("envelope", ["steady", "dissipating"])
