@@ -32,7 +32,7 @@ import numpy as np
 from scipy import special
 
 from . import quadrature as quad
-from .steady import _cumulative_table, _read_table
+from .steady import _cumulative_table, _horner, _read_table
 
 __all__ = ["body_spin_table"]
 
@@ -114,6 +114,7 @@ def body_spin_table(phi, first, b, var, ages, g, n_nodes, records):
     rw, _ = np.nonzero(need)
     q = np.full(y.shape, -np.inf)
     q[need] = y[need] + records(y[need], rw)
+    q = _tame(q, n_nodes)
     tail0 = _tail_start(y_a, narrow, records)
     table = _cumulative_table(breaks, q, tail0, n_nodes)
     wi, ki = np.nonzero(first)
@@ -121,6 +122,47 @@ def body_spin_table(phi, first, b, var, ages, g, n_nodes, records):
     # y_a lies below every read, so no read falls below the table
     out[wi, ki] = _read_table(table, phi[wi, ki], wi)[0]
     return out
+
+
+def _tame(q, n_nodes):
+    """q at the table's nodes (R, (B - 1) n), with each panel whose interpolant is not
+    trustworthy replaced by a constant: the log of the panel's Gauss mean of e^q.
+
+    The table integrates exp of the polynomial through a panel's node values. Where q is not
+    smooth on the panel's scale, that polynomial swings far outside the node values: a limit
+    much narrower than the panel (no stated error, intrinsic scatter near 0) makes its age
+    sum a staircase of the age nodes (ln of it jumps by hundreds of nats between nodes), and
+    the swing read e^q as e^500000 (seen in a fit, which then climbed that spike). A panel is
+    replaced when its interpolant, between and beyond its nodes, leaves the node values'
+    range by more than 1 nat plus 10 % of that range, or when a node value is not finite.
+    The panel then keeps the Gauss estimate of its integral (a staircase's steps err by at
+    most one node's weight), and a read inside it interpolates C linearly.
+    """
+    r, m = q.shape
+    qp = q.reshape(r, m // n_nodes, n_nodes)
+    live = np.isfinite(qp[..., 0]) | np.isfinite(qp[..., -1])
+    if not np.any(live):
+        return q
+    ql = qp[live]                                                  # (L, n)
+    finite = np.isfinite(ql).all(axis=-1)
+    qf = np.where(np.isfinite(ql), ql, 0.0)
+    coef = qf @ quad.monomial_interpolation(n_nodes).T
+    x, w = quad.gauss_legendre_unit(n_nodes)
+    check = np.concatenate([[0.0], 0.5 * (x[:-1] + x[1:]), [1.0]])
+    vals = _horner(coef, np.broadcast_to(check, (len(ql), len(check))))
+    top, low = qf.max(axis=-1), qf.min(axis=-1)
+    slack = 1.0 + 0.1 * (top - low)
+    wild = ~finite | (vals.max(axis=-1) > top + slack) | \
+        (vals.min(axis=-1) < low - slack)
+    if not np.any(wild):
+        return q
+    qw = ql[wild]
+    mx = np.max(qw, axis=-1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        mean = np.log(np.exp(qw - mx[:, None]) @ w) + mx
+    ql[wild] = mean[:, None]
+    qp[live] = ql
+    return qp.reshape(r, m)
 
 
 def _tail_start(y_a, narrow, records):
