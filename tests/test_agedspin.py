@@ -139,7 +139,7 @@ def test_compile_kernels_compiles_the_age_sums_the_model_uses(demo_model):
     assert set(kernel.records_sum.signatures) == before
 
 
-@pytest.mark.parametrize("envelope", ["dissipating", "viscous"])
+@pytest.mark.parametrize("envelope", ["steady", "dissipating", "viscous"])
 def test_no_body_exceeds_its_likelihood_bound(envelope):
     """A body's marginal likelihood is an average of densities each at most prod over its
     detections of 1 / sqrt(2 pi V_i) (limits' probabilities are at most 1), so ln L_body <=
