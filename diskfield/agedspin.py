@@ -45,7 +45,7 @@ _CORE_STEP = 1.5
 _OUTER_GRADES = np.array([3.0, 9.0])
 #: The table starts this many sds below the lowest record interval, and ends as far above the
 #: highest: a detection's density there is below e^-200 of its peak; limits are passed with
-#: probability 1 - e^-18 at 6 sds (ln C then has a closed form; numerical convention).
+#: probability 1 - 1e-9 at 6 sds (ln C then has a closed form; numerical convention).
 _TAIL_SDS = 20.0
 _LIMIT_SDS = 6.0
 #: Most core panels per (walker, body) (a cap: a limit without stated error at a tiny
