@@ -1,10 +1,26 @@
 """Small helpers shared by the likelihood's steady and aged parts."""
 from __future__ import annotations
 
+import importlib
+
 import numpy as np
 
 from .errors import PriorFileError
 from .recording import LN_SQRT_2PI
+
+
+def load_kernel(current, name):
+    """A compiled-kernel module, imported on first use: ``current`` unless it is ``...`` (not
+    tried yet), then ``diskfield.<name>``, or None when numba cannot be used (the array code
+    then runs). Each caller keeps the result in its own module global, which tests set to
+    None to compare the two implementations; numba's import (~0.3 s) is paid only by
+    commands that evaluate a likelihood."""
+    if current is not ...:
+        return current
+    try:
+        return importlib.import_module(f"diskfield.{name}")
+    except Exception:  # pragma: no cover - numba is a declared dependency
+        return None
 
 
 def _finite_support(prior, what):

@@ -14,7 +14,7 @@ import numpy as np
 from scipy import special
 
 from . import quadrature as quad
-from ._lkcommon import _expand, _finite_support
+from ._lkcommon import _expand, _finite_support, load_kernel
 from .errors import CompilationError
 from .priorspec import Uniform
 from .recording import LN_SQRT_2PI, emg_logpdf, emg_logsf
@@ -380,12 +380,7 @@ _compiled = ...
 
 def _kernel():
     global _compiled
-    if _compiled is ...:
-        try:
-            from . import _aged_jit as module
-        except Exception:  # pragma: no cover - numba is a declared dependency
-            module = None
-        _compiled = module
+    _compiled = load_kernel(_compiled, "_aged_jit")
     return _compiled
 
 

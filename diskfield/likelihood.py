@@ -24,7 +24,7 @@ import numpy as np
 
 from . import quadrature as quad
 from . import aged, steady
-from ._lkcommon import _detection_stats, _expand, _finite_support
+from ._lkcommon import _detection_stats, _expand, _finite_support, load_kernel
 from .aged import _PLATEAU_SPREAD, _age_priors, _age_rule, _integrand_aged, log_factor_range
 from .errors import CompilationError, OptionError, PriorFileError, Problem
 from .ordering import label_ordering
@@ -43,12 +43,7 @@ _rule_compiled = ...
 
 def _rule_kernel():
     global _rule_compiled
-    if _rule_compiled is ...:
-        try:
-            from . import _rule_jit as module
-        except Exception:  # pragma: no cover - numba is a declared dependency
-            module = None
-        _rule_compiled = module
+    _rule_compiled = load_kernel(_rule_compiled, "_rule_jit")
     return _rule_compiled
 
 

@@ -26,6 +26,7 @@ import numpy as np
 from scipy import special
 
 from . import quadrature as quad
+from ._lkcommon import load_kernel
 from .recording import LN_SQRT_2PI, emg_logpdf, emg_logsf
 
 #: The compiled kernel of the same rule (:mod:`diskfield._steady_jit`), imported on first use
@@ -36,12 +37,7 @@ _compiled = ...
 
 def _kernel():
     global _compiled
-    if _compiled is ...:
-        try:
-            from . import _steady_jit as module
-        except Exception:  # pragma: no cover - numba is a declared dependency
-            module = None
-        _compiled = module
+    _compiled = load_kernel(_compiled, "_steady_jit")
     return _compiled
 
 __all__ = ["body_spin", "no_spin", "record_spin", "body_spin_with_limits", "compile_kernels"]

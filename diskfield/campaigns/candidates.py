@@ -72,7 +72,7 @@ def _read_table(path: Path):
     try:
         table = Table.read(path, format=fmt)
     except FileNotFoundError:
-        raise CompilationError(f"file not found; give a candidates file (.ecsv or .csv)",
+        raise CompilationError("file not found; give a candidates file (.ecsv or .csv)",
                                source=str(path)) from None
     except Exception as err:  # astropy raises many types for malformed text
         raise CompilationError(f"cannot be read as {fmt[6:].upper()}: {err}",
