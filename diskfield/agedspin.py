@@ -106,7 +106,8 @@ def body_spin_table(phi, first, b, var, ages, g, n_nodes, records):
     outer = np.concatenate([core_lo[:, None] - narrow[:, None] * _OUTER_GRADES,
                             core_hi[:, None] + narrow[:, None] * _OUTER_GRADES], axis=-1)
     breaks = np.concatenate([core, outer, y_a[:, None], y_b[:, None]], axis=-1)
-    breaks = np.sort(np.clip(breaks, y_a[:, None], np.maximum(y_b, y_a)[:, None]), axis=-1)
+    breaks = _distinct(np.sort(np.clip(breaks, y_a[:, None], np.maximum(y_b, y_a)[:, None]),
+                               axis=-1))
     y, _ = quad.panel_rule(breaks, n_nodes)                        # (W, (B - 1) n)
     h = np.diff(breaks, axis=-1)
     # C is read up to the highest read only: panels starting above it are not needed
@@ -122,6 +123,20 @@ def body_spin_table(phi, first, b, var, ages, g, n_nodes, records):
     # y_a lies below every read, so no read falls below the table
     out[wi, ki] = _read_table(table, phi[wi, ki], wi)[0]
     return out
+
+
+def _distinct(breaks):
+    """Sorted breaks (R, B) without their repeats: each row's distinct values first, padded
+    with its last one (zero-width panels at the end), as few columns as the longest row needs.
+    Most of the _MAX_CORE + 1 core slots repeat the core's end; the table's array work is
+    per column."""
+    keep = np.ones(breaks.shape, bool)
+    keep[:, 1:] = breaks[:, 1:] > breaks[:, :-1]
+    n_keep = keep.sum(axis=-1)
+    order = np.argsort(~keep, axis=-1, kind="stable")[:, :n_keep.max()]
+    out = np.take_along_axis(breaks, order, axis=-1)
+    last = breaks[:, -1:]
+    return np.where(np.arange(out.shape[1]) < n_keep[:, None], out, last)
 
 
 def _tame(q, n_nodes):
