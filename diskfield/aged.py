@@ -81,27 +81,31 @@ def _age_support(ages):
 
 def _log_age_pdf(ages, t):
     """ln p(t) of each padded record's age prior at t of shape (..., G, n, K) [1/Myr]."""
-    a, b = ages.a[..., None], ages.b[..., None]
-    z = (t - a) / b
-    normal = ages.kind[..., None] == 0
-    out = np.where(normal, -0.5 * z * z - np.log(b) - LN_SQRT_2PI,
-                   -np.log(np.where(normal, 1.0, b - a)))
-    for prior, mask in ages.window.values():
-        out = np.where(mask[..., None], prior.log_prob(t), out)
-    return out
+    t = np.asarray(t, float)
+
+    def at(a):
+        return np.broadcast_to(a[..., None], t.shape)
+
+    return _age_logpdf(at(ages.kind), at(ages.a), at(ages.b),
+                       [(prior, at(mask)) for prior, mask in ages.window.values()], t)
 
 
 def _log_age_pdf_at(ages, t, gi, ri):
     """ln p(t) at flat times ``t`` (N,) of padded records (``gi``, ``ri``) (N,) [1/Myr]."""
-    a, b = ages.a[gi, ri], ages.b[gi, ri]
-    normal = ages.kind[gi, ri] == 0
+    return _age_logpdf(ages.kind[gi, ri], ages.a[gi, ri], ages.b[gi, ri],
+                       [(prior, mask[gi, ri]) for prior, mask in ages.window.values()], t)
+
+
+def _age_logpdf(kind, a, b, windows, t):
+    """ln p(t) with each element's prior family ``kind`` (0 normal: mean ``a``, sd ``b``;
+    1 uniform on [a, b]) and, where a window mask is set, that window prior's density."""
+    normal = kind == 0
     z = (t - a) / b
     out = np.where(normal, -0.5 * z * z - np.log(b) - LN_SQRT_2PI,
                    -np.log(np.where(normal, 1.0, b - a)))
-    for prior, mask in ages.window.values():
-        sel = mask[gi, ri]
-        if np.any(sel):
-            out[sel] = prior.log_prob(t[sel])
+    for prior, mask in windows:
+        if np.any(mask):
+            out[mask] = prior.log_prob(t[mask])
     return out
 
 
