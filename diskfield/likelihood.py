@@ -331,22 +331,15 @@ class Model:
         integrands and sums as :meth:`_steady_terms` (tested equal to ~1e-12). None when the
         compiled rule does not apply (no power-law form, numba missing, spin not shared, an
         obliquity prior, a distance prior of another form)."""
-        from .profiles.ring import MIN_RING_FACTOR
-
-        if self._fused is None or self.profile.power_law_form is None or _rule_kernel() is None:
+        inputs = self._rule_inputs(p) if self._fused is not None else None
+        if inputs is None:
             return None
-        rows = _form_rows(self.profile.power_law_form(p), len(p["intrinsic_scatter"]))
-        if rows is None:
-            return None
-        coef, n_rings, has_break = rows
-        var, stats, _, level, scale = self._levels(p)
+        var, stats, args = inputs
         closed, prior = self._fused
         zbar, v, ln_k = (np.ascontiguousarray(np.where(np.isfinite(stats[1]), a, d))
                          for a, d in zip(stats, (0.0, 1.0, 0.0)))
-        r, terms, phi, wi, gi, ll = _rule_kernel().steady_loglike(
-            coef, n_rings, has_break, MIN_RING_FACTOR, np.ascontiguousarray(level),
-            np.ascontiguousarray(scale), *self._rule_static, self.settings.max_crossings,
-            closed, prior, zbar, v, ln_k)
+        r, terms, phi, wi, gi, ll = _rule_kernel().steady_loglike(*args, closed, prior, zbar,
+                                                                  v, ln_k)
         if len(r):
             terms = terms + self._log_integrand(phi, self._bodies, var, stats, None, p,
                                                 at=(wi, gi))
@@ -433,6 +426,16 @@ class Model:
         """The steady rule's nodes through the compiled kernel: the same rule as
         :meth:`_distance_rule` and :meth:`_array_nodes`. None when the profile declares no
         power-law form (or one the kernel does not take) or numba is not available."""
+        inputs = self._rule_inputs(p)
+        if inputs is None:
+            return None
+        var, stats, args = inputs
+        return (var, stats) + _rule_kernel().steady_nodes(*args)
+
+    def _rule_inputs(self, p):
+        """Variances, detection statistics and the compiled steady rule's arguments for this
+        call; None when the rule does not apply (no power-law form or one the kernel does not
+        take, or numba not available)."""
         from .profiles.ring import MIN_RING_FACTOR
 
         if self.profile.power_law_form is None or _rule_kernel() is None:
@@ -442,10 +445,9 @@ class Model:
             return None
         coef, n_rings, has_break = rows
         var, stats, _, level, scale = self._levels(p)   # steady: no age rule
-        r, logw, phi, wi, gi = _rule_kernel().steady_nodes(
-            coef, n_rings, has_break, MIN_RING_FACTOR, np.ascontiguousarray(level),
-            np.ascontiguousarray(scale), *self._rule_static, self.settings.max_crossings)
-        return var, stats, r, logw, phi, wi, gi
+        return var, stats, (coef, n_rings, has_break, MIN_RING_FACTOR,
+                            np.ascontiguousarray(level), np.ascontiguousarray(scale),
+                            *self._rule_static, self.settings.max_crossings)
 
     def _log_field_at(self, p, r, wi):
         """ln R at flat distances ``r`` (N,) of walkers ``wi`` (N,).
