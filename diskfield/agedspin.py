@@ -43,6 +43,8 @@ _CORE_SDS = 4.0
 _CORE_STEP = 1.5
 #: Break points outside the core, in narrowest-record sds beyond it (convention).
 _OUTER_GRADES = np.array([3.0, 9.0])
+#: Break points around each limit's step, in its own sds (as the steady table's; convention).
+_STEP_GRADES = np.array([-9.0, -3.0, -1.0, 0.0, 1.0, 3.0, 9.0])
 #: The table starts this many sds below the lowest record interval, and ends as far above the
 #: highest: a detection's density there is below e^-200 of its peak; limits are passed with
 #: probability 1 - 1e-9 at 6 sds (ln C then has a closed form; numerical convention).
@@ -105,7 +107,13 @@ def body_spin_table(phi, first, b, var, ages, g, n_nodes, records):
                     core_hi[:, None])
     outer = np.concatenate([core_lo[:, None] - narrow[:, None] * _OUTER_GRADES,
                             core_hi[:, None] + narrow[:, None] * _OUTER_GRADES], axis=-1)
-    breaks = np.concatenate([core, outer, y_a[:, None], y_b[:, None]], axis=-1)
+    # a limit's step, at each end of its interval, graded in its own sds as in the steady
+    # table: where the core's panels are capped, a limit far narrower than them (no stated
+    # error, intrinsic scatter near 0) would otherwise fall inside one panel (seen 0.015 nat
+    # under a constant envelope, against the steady likelihood)
+    ends = np.stack([z - lt_hi, z - lt_lo], axis=-1)[:, is_lim]        # (W, L, 2)
+    steps = (ends[..., None] + sd[:, is_lim, None, None] * _STEP_GRADES).reshape(len(ends), -1)
+    breaks = np.concatenate([core, outer, steps, y_a[:, None], y_b[:, None]], axis=-1)
     breaks = _distinct(np.sort(np.clip(breaks, y_a[:, None], np.maximum(y_b, y_a)[:, None]),
                                axis=-1))
     y, _ = quad.panel_rule(breaks, n_nodes)                        # (W, (B - 1) n)
