@@ -87,3 +87,55 @@ def records_sum(y, wi, z, var, is_lim, lf, lw, n_q):
             acc += math.log(tot) + top + norm
         out[p] = acc
     return out
+
+
+@njit(cache=True)
+def measure_breaks(grid, lf, lp, inverse, sd, scale, hi, consts):
+    """``aged._measure_breaks`` with each record's grid, ln T and ln p read through its
+    distinct prior ``inverse`` (G, n) from (W, U, N) arrays, (W, G, n, _MAX_PANELS - 1).
+
+    ``consts`` = (sharp spread, sharp level step, level step, log-pdf step, width step, most
+    panels): ``aged._MEASURE_CONSTANTS``. The same sums in the same order; the inverse of
+    the cumulative measure by a forward walk instead of one offset ``searchsorted``.
+    """
+    sharp_spread, sharp_step, level_step = consts[0], consts[1], consts[2]
+    log_pdf_step, width_step, max_panels = consts[3], consts[4], consts[5]
+    n_w, n_g, n_r = sd.shape
+    n = grid.shape[2]
+    n_j = int(max_panels) - 1
+    out = np.empty((n_w, n_g, n_r, n_j))
+    cum = np.empty(n)
+    for w in range(n_w):
+        for g in range(n_g):
+            for r in range(n_r):
+                u = inverse[g, r]
+                s = sd[w, g, r]
+                top, low = -np.inf, np.inf
+                for i in range(n):
+                    top = max(top, lf[w, u, i])
+                    low = min(low, lf[w, u, i])
+                a = (sharp_step if top - low > sharp_spread * s else level_step) * s
+                sc = width_step * scale[g, r]
+                cum[0] = 0.0
+                for i in range(n - 1):
+                    c = max(abs(lf[w, u, i + 1] - lf[w, u, i]) / a,
+                            abs(lp[w, u, i + 1] - lp[w, u, i]) / log_pdf_step)
+                    cum[i + 1] = cum[i] + max(c, (grid[w, u, i + 1] - grid[w, u, i]) / sc)
+                total = cum[n - 1]
+                n_pan = min(max(math.ceil(total), 1.0), max_panels)
+                denom = total if total > 0 else 1.0
+                k = 0
+                for j in range(1, n_j + 1):
+                    if j >= n_pan:
+                        out[w, g, r, j - 1] = hi[g, r]
+                        continue
+                    target = j / n_pan
+                    while k < n and cum[k] / denom < target:   # searchsorted, side="left"
+                        k += 1
+                    kk = min(max(k, 1), n - 1)
+                    f0, f1 = cum[kk - 1] / denom, cum[kk] / denom
+                    g0, g1 = grid[w, u, kk - 1], grid[w, u, kk]
+                    step = (target - f0) / (f1 - f0) if f1 > f0 else 0.0
+                    step = min(max(step, 0.0), 1.0)
+                    out[w, g, r, j - 1] = g0 + step * (g1 - g0)
+    return out

@@ -134,6 +134,8 @@ _WIDTH_STEP = 3.0
 #: Most panels per record, and points of the uniform time grid on which the measure is summed.
 _MAX_PANELS = 64
 _GRID = 97
+_MEASURE_CONSTANTS = np.array([_SHARP_SPREAD, _SHARP_LEVEL_STEP, _LEVEL_STEP, _LOG_PDF_STEP,
+                               _WIDTH_STEP, _MAX_PANELS], dtype=float)
 
 
 def _age_rule(ages, envelope, p, s, var=None):
@@ -159,12 +161,23 @@ def _age_rule(ages, envelope, p, s, var=None):
     if var is None:
         var = np.broadcast_to((p["intrinsic_scatter"] ** 2)[:, None, None], shape)
     lo, hi = _age_support(ages)
-    grid = _time_grid(lo, hi, _envelope_features(p), w)
-    pe = _expand(p, 3)
+    # records with one age prior share their grid: ln T and ln p are evaluated once per prior
+    first, inverse, sub = _distinct_priors(ages)
+    grid = _time_grid(lo[first], hi[first], _envelope_features(p), w)     # (W, U, N)
+    lf = envelope.log_factor(grid, _expand(p, 2))
+    lp = _log_age_pdf(sub, grid)
+    sd = np.sqrt(np.maximum(var, 1e-10))
+    scale = np.where(ages.kind == 0, ages.b, (hi - lo) / _WIDTH_STEP)
+    kernel = _kernel()
+    if kernel is not None:
+        measure = kernel.measure_breaks(grid, lf, lp, inverse, np.ascontiguousarray(sd), scale,
+                                        hi, _MEASURE_CONSTANTS)
+    else:
+        measure = _measure_breaks(grid[:, inverse], lf[:, inverse], lp[:, inverse], sd, scale,
+                                  hi)
     breaks = np.concatenate([
-        _measure_breaks(grid, envelope, pe, ages, np.sqrt(np.maximum(var, 1e-10)), lo, hi),
-        np.broadcast_to(np.stack([lo, hi, np.clip(0.0, lo, hi)], axis=-1), shape + (3,))],
-        axis=-1)
+        measure, np.broadcast_to(np.stack([lo, hi, np.clip(0.0, lo, hi)], axis=-1),
+                                 shape + (3,))], axis=-1)
     breaks = np.sort(breaks, axis=-1)
     # zero-width panels (slots a record does not need) carry no weight: only the others'
     # nodes are laid out (each row's first, in order) and evaluated; the rest is padding
@@ -203,28 +216,27 @@ def _age_rule(ages, envelope, p, s, var=None):
 
 
 def _time_grid(lo, hi, feats, w):
-    """Sorted times (W, G, n, N): uniform on each support, plus the envelope's features."""
+    """Sorted times (W, ..., N) for supports ``lo``, ``hi`` of any shape: uniform on each
+    support, plus the envelope's features."""
     u = np.linspace(0.0, 1.0, _GRID)
     grid = np.broadcast_to(lo[..., None] + (hi - lo)[..., None] * u, (w,) + lo.shape + (_GRID,))
     if feats is None:
         return grid
-    f = np.clip(feats[:, None, None, :], lo[..., None], hi[..., None])
+    f = np.clip(feats.reshape((w,) + (1,) * lo.ndim + (-1,)), lo[..., None], hi[..., None])
     return np.sort(np.concatenate([grid, f], axis=-1), axis=-1)
 
 
-def _measure_breaks(grid, envelope, pe, ages, sd, lo, hi):
+def _measure_breaks(grid, lf, lp, sd, scale, hi):
     """Times (W, G, n, _MAX_PANELS - 1) splitting each record's support into panels of equal
     measure (see ``_LEVEL_STEP``), at most ``_MAX_PANELS``; unused slots are ``hi``.
 
-    The measure is summed on ``grid`` and inverted by linear interpolation (one
-    ``searchsorted`` over all rows, each row offset to keep the whole increasing).
+    ``grid``, ``lf``, ``lp`` (W, G, n, N): each record's time grid, ln T and ln p on it;
+    ``sd`` (W, G, n) its sd of ln B; ``scale``, ``hi`` (G, n). The measure is summed on the
+    grid and inverted by linear interpolation (one ``searchsorted`` over all rows, each row
+    offset to keep the whole increasing). The compiled form is
+    ``_aged_jit.measure_breaks`` (tested equal).
     """
-    # records with one age prior share their grid: ln T and ln p are evaluated once per prior
-    first, inverse, sub = _distinct_priors(ages)
-    grid_u = grid[:, first[0], first[1]]                               # (W, U, N)
-    lf = envelope.log_factor(grid_u, {k: v[:, :1, 0] for k, v in pe.items()})[:, inverse]
-    lp = _log_age_pdf(sub, grid_u)[:, inverse]
-    scale = np.where(ages.kind == 0, ages.b, (hi - lo) / _WIDTH_STEP)[..., None]
+    scale = scale[..., None]
     sharp = (lf.max(axis=-1) - lf.min(axis=-1)) > _SHARP_SPREAD * sd
     step = np.where(sharp, _SHARP_LEVEL_STEP, _LEVEL_STEP)
     cell = np.maximum(np.abs(np.diff(lf, axis=-1)) / (step * sd)[..., None],
@@ -389,13 +401,18 @@ def _kernel():
 
 
 def compile_kernels() -> None:
-    """Compile (or load from numba's cache) the age sums now, in the layout models pass."""
+    """Compile (or load from numba's cache) the age sums and the age rule's measure now, in
+    the layout models pass."""
     kernel = _kernel()
     if kernel is None:
         return
     one = np.zeros(1, np.int64)
     kernel.records_sum(np.zeros(1), one, np.zeros(1), np.ones((1, 1)), np.zeros(1, bool),
                        np.zeros((1, 1, 1)), np.zeros((1, 1, 1)), np.ones((1, 1), np.int64))
+    grid = np.linspace(0.0, 1.0, 3)[None, None]
+    kernel.measure_breaks(grid, np.zeros((1, 1, 3)), np.zeros((1, 1, 3)),
+                          np.zeros((1, 1), np.int64), np.ones((1, 1, 1)), np.ones((1, 1)),
+                          np.ones((1, 1)), _MEASURE_CONSTANTS)
 
 
 def _records_at(b, var, ages, g):

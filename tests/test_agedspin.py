@@ -141,10 +141,29 @@ def test_compile_kernels_compiles_the_age_sums_the_model_uses(demo_model):
     if kernel is None:
         pytest.skip("numba not importable")
     lk.compile_kernels()
-    before = set(kernel.records_sum.signatures)
+    before = {f: set(getattr(kernel, f).signatures) for f in ("records_sum", "measure_breaks")}
     rng = np.random.default_rng(5)
     demo_model.log_likelihood(np.column_stack([p.sample(rng, 4) for p in demo_model.priors]))
-    assert set(kernel.records_sum.signatures) == before
+    assert {f: set(getattr(kernel, f).signatures) for f in before} == before
+
+
+@pytest.mark.parametrize("envelope", ["dissipating", "viscous"])
+def test_compiled_age_rule_equals_the_array_rule(envelope, monkeypatch):
+    """The age rule's measure compiled (_aged_jit.measure_breaks) and in array code
+    (aged._measure_breaks) place the same age panels: same nodes and weights to round-off
+    (common practice, no source: two implementations held equal)."""
+    model = _demo_model("two-ring", envelope)
+    rng = np.random.default_rng(9)
+    theta = np.column_stack([p.sample(rng, 32) for p in model.priors])
+    p = model.params(theta[model._in_support(theta)])
+    compiled = model._setup(p)[2]
+    monkeypatch.setattr(aged, "_compiled", None)
+    array = model._setup(p)[2]
+    np.testing.assert_array_equal(np.isfinite(compiled.logw), np.isfinite(array.logw))
+    live = np.isfinite(array.logw)
+    np.testing.assert_allclose(compiled.log_factor[live], array.log_factor[live], rtol=1e-12,
+                               atol=1e-12)
+    np.testing.assert_allclose(compiled.logw[live], array.logw[live], rtol=1e-12, atol=1e-12)
 
 
 @pytest.mark.parametrize("envelope", ["steady", "dissipating", "viscous"])
