@@ -119,8 +119,11 @@ _NORMAL_CUT = 9.0
 #: time for a normal prior (its core, where the log density is flat); a window is not split
 #: by time alone. Conventions: with steps of 2, 6 and 2 the worst error at the tests' points
 #: was 1.4e-3 nat, with 3, 10 and 3 1.6e-3 nat at two thirds of the nodes
-#: (tests/test_aged.py, benchmarks/bench_aged.py).
-_LEVEL_STEP = 3.0
+#: (tests/test_aged.py, benchmarks/bench_aged.py); but at posterior draws of a dissipating
+#: fit to the demo (an edge of 0.06 Myr, ln T falling by 3.5 record sds) a level step of 3
+#: left bodies 0.005-0.009 nat off (0.012 on their sum), and 2 at most 0.0017 for 5 % more
+#: age nodes (tests/test_agedspin.py).
+_LEVEL_STEP = 2.0
 #: The level step of a record whose ln T spreads over more than ``_SHARP_SPREAD`` of its sds
 #: (a field that drops steeply inside its window): with 3 the panels across a 7-e-fold drop
 #: within 0.05 Myr left 0.013-0.014 nat, with 2 up to 0.013, with 1 at most 0.0024
