@@ -392,8 +392,8 @@ def _integrand_aged_body_table(phi, b, var, ages, s, skip=None):
     return np.take_along_axis(out, src, axis=-1)
 
 
-#: The compiled age sums (:mod:`diskfield._aged_jit`), imported on first use; None: the array
-#: code (:func:`_records_sum`; tests set it to compare both).
+#: The compiled age sums and measure (:mod:`diskfield._aged_jit`), imported on first use; None:
+#: the array code (:func:`_records_sum`, :func:`_measure_breaks`; tests set it to compare).
 _compiled = ...
 
 

@@ -175,8 +175,7 @@ def _tame(q, n_nodes):
     vals = _horner(coef, np.broadcast_to(check, (len(ql), len(check))))
     top, low = qf.max(axis=-1), qf.min(axis=-1)
     slack = 1.0 + 0.1 * (top - low)
-    wild = ~finite | (vals.max(axis=-1) > top + slack) | \
-        (vals.min(axis=-1) < low - slack)
+    wild = ~finite | (vals.max(axis=-1) > top + slack) | (vals.min(axis=-1) < low - slack)
     if not np.any(wild):
         return q
     qw = ql[wild]
@@ -203,7 +202,7 @@ def _tail_start(y_a, narrow, records):
     x = slope / np.sqrt(np.where(curv > 0, curv, 1.0))
     with np.errstate(divide="ignore", invalid="ignore"):
         # int_-inf^0 exp(g s - a s^2 / 2) ds = sqrt(2 pi / a) e^(g^2 / 2a) Phi(-g / sqrt a);
-        # for g / sqrt(a) > 30 its asymptotic form e^0 / g (1 - a / g^2 + 3 a^2 / g^4)
+        # for g / sqrt(a) > 30 its asymptotic form e^q0 / g (1 - a / g^2 + 3 a^2 / g^4)
         r = curv / slope ** 2
         asym = q0 - np.log(slope) + np.log1p(-r + 3.0 * r * r)
         exact = (q0 + 0.5 * x * x + 0.5 * np.log(2.0 * np.pi / np.where(curv > 0, curv, 1.0))
