@@ -9,7 +9,8 @@ Run:  python benchmarks/bench_likelihood.py [--walkers 64] [--repeat 10] [--aged
     per body and age nodes per record), timed in the same run; (c) the formulation written by hand (latents as explicit
     parameters, a Python loop over records) per call; (d) scaling over synthetic
     compilations of 30, 100, 300 and 1000 records; (e) the compiled kernels (distance rule,
-    limits) against the same rules in array code, same walkers.
+    limits) against the same rules in array code, same walkers; (f) ln Phi per element: the
+    compiled kernels' table against ``erfc`` and scipy.
 """
 from __future__ import annotations
 
@@ -153,6 +154,38 @@ def main(argv=None):
         t = _timed(lambda: model.log_likelihood(theta), max(1, args.repeat // 4))
         print(f"{n:8d} {len(sim.bodies):7d} {1e3 * t:9.2f} {1e6 * t / n:10.1f}")
     _compiled_versus_array(comp, pset, w, rng, args)
+    _special_function(rng)
+
+
+def _special_function(rng):
+    """(f) ln Phi per element: the kernels' table, the C library's erfc, scipy's log_ndtr."""
+    try:
+        from numba import njit
+
+        from diskfield import _ndtr_jit
+    except ImportError:
+        print("\n(f) numba not importable")
+        return
+
+    def summed(f):
+        @njit
+        def run(x):
+            s = 0.0
+            for v in x:
+                s += f(v)
+            return s
+        return run
+
+    x = rng.normal(-2.0, 4.0, 200_000)
+    out = np.empty_like(x)
+    table, erfc = summed(_ndtr_jit.log_ndtr), summed(_ndtr_jit.log_ndtr_erfc)
+    t_t = _timed(lambda: table(x), 5)
+    t_e = _timed(lambda: erfc(x), 5)
+    t_s = _timed(lambda: special.log_ndtr(x, out=out), 5)
+    per = 1e9 / len(x)
+    print(f"\n(f) ln Phi per element, x ~ N(-2, 4^2): table {per * t_t:.1f} ns, erfc "
+          f"{per * t_e:.1f} ns, scipy.special.log_ndtr {per * t_s:.1f} ns (erfc / table "
+          f"{t_e / t_t:.1f}x)")
 
 
 def _compiled_versus_array(comp, pset, w, rng, args):

@@ -13,7 +13,7 @@ import math
 import numpy as np
 from numba import njit
 
-from ._steady_jit import log_ndtr
+from ._ndtr_jit import log_ndtr
 
 _SQRT_HALF = math.sqrt(0.5)
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)

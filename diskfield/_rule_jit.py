@@ -21,7 +21,7 @@ import math
 import numpy as np
 from numba import njit
 
-from ._steady_jit import log_ndtr
+from ._ndtr_jit import log_ndtr
 
 
 @njit(cache=True)

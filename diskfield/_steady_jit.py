@@ -8,9 +8,7 @@ it, which makes the limits part several times faster (``benchmarks/bench_likelih
 The table keeps each panel's monomial coefficients of q's interpolant (not its node values),
 so a read costs only its own short Gauss rule.
 
-``log_ndtr`` is written out (numba has no ``scipy.special``): ln of ``erfc`` from the C
-library for x > -20, the asymptotic series of ln Phi below (Abramowitz & Stegun 1964, 26.2.12;
-the same split as ``scipy.special.log_ndtr``), ``log1p`` of the upper tail above 6.
+ln Phi is read from the table of :mod:`diskfield._ndtr_jit` (numba has no ``scipy.special``).
 """
 from __future__ import annotations
 
@@ -19,23 +17,9 @@ import math
 import numpy as np
 from numba import njit
 
-_SQRT_HALF = math.sqrt(0.5)
+from ._ndtr_jit import log_ndtr
+
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
-
-
-@njit(cache=True)
-def log_ndtr(x):
-    """ln Phi(x) for a float x (Phi the standard normal CDF), accurate in both tails."""
-    if x > 8.3:  # ln Phi = -Phi(-x) to 1e-33, and |Phi(-8.3)| < 5.2e-17: 0 to double precision
-        return 0.0
-    if x > 6.0:
-        return math.log1p(-0.5 * math.erfc(x * _SQRT_HALF))
-    if x > -20.0:
-        return math.log(0.5 * math.erfc(-x * _SQRT_HALF))
-    # Phi(x) = phi(x)/(-x) (1 - 1/x^2 + 3/x^4 - 15/x^6 + ...) (A&S 26.2.12); 1/x^2 < 0.0025
-    r = 1.0 / (x * x)
-    series = 1.0 - r * (1.0 - r * (3.0 - r * (15.0 - r * (105.0 - r * 945.0))))
-    return -0.5 * x * x - math.log(-x) - _LN_SQRT_2PI + math.log(series)
 
 
 @njit(cache=True)
