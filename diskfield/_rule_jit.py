@@ -136,44 +136,10 @@ def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, bas
 
 
 @njit(cache=True)
-def steady_loglike(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixed,
-                   ring_u, offsets, grades, gl_x, gl_logw, max_count, closed, prior, zbar, v,
-                   ln_k):
-    """The distance rule with the closed-form bodies' integrals done in the same pass.
-
-    A body with ``closed[g]`` (body-shared spin, detections only) is integrated here:
-    sum over its nodes of weight x prior density x K EMG(ln R - zbar; V), in logs. Every
-    other body's nodes are returned flat as in :func:`steady_nodes`, with ln weight + ln
-    prior density in place of the ln weight, for the caller's integrands.
-
-    Parameters
-    ----------
-    closed : ndarray of int (G,)
-        1 for the bodies integrated here.
-    prior : ndarray (G, 4)
-        Each body's distance prior as ln p(r) = c - k ln r - (r - mu)^2 s^2 / 2, rows
-        ``[c, k, mu, s]`` (``likelihood._prior_form``; valid inside the support, where
-        every node lies).
-    zbar, v, ln_k : ndarray (W, G)
-        Detections' precision-weighted mean, variance and ln K (closed bodies).
-
-    Returns
-    -------
-    r, log_term, phi, wi, gi : ndarray (N,)
-        The other bodies' nodes, ln weight + ln prior, ln R, walker and body.
-    ll : ndarray (W, G)
-        The closed bodies' log-likelihoods (0 for the others).
-    """
-    return _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixed,
-                 ring_u, offsets, grades, gl_x, gl_logw, max_count, True, closed, prior, zbar,
-                 v, ln_k)
-
-
-@njit(cache=True)
 def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixed, ring_u,
           offsets, grades, gl_x, gl_logw, max_count, fused, closed, prior, zbar, v, ln_k):
     """The distance rule, one pass per (walker, body); with ``fused`` the closed bodies'
-    integrals too (:func:`steady_loglike`).
+    integrals too (the driver :func:`diskfield._body_jit.steady_body_loglike` calls it so).
 
     Parameters
     ----------
@@ -194,8 +160,26 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
     max_count : int
         Crossing slots per body.
 
-    fused, closed, prior, zbar, v, ln_k
-        See :func:`steady_loglike`.
+    fused : bool
+        Integrate the ``closed`` bodies here: the sum over a body's nodes of weight x prior
+        density x K EMG(ln R - zbar; V), in logs (ll); every other body's nodes are returned
+        flat with ln weight + ln prior density in place of the ln weight.
+    closed : ndarray of int (G,)
+        1 for the bodies integrated here (body-shared spin, detections only).
+    prior : ndarray (G, 4)
+        Each body's distance prior as ln p(r) = c - k ln r - (r - mu)^2 s^2 / 2, rows
+        ``[c, k, mu, s]`` (``likelihood._prior_form``; valid inside the support, where
+        every node lies).
+    zbar, v, ln_k : ndarray (W, G)
+        Detections' precision-weighted mean, variance and ln K (closed bodies).
+
+    Returns
+    -------
+    r, log_term, phi, wi, gi : ndarray (N,)
+        Nodes of the bodies not integrated here [AU], ln weight (+ ln prior when fused),
+        ln R, walker and body.
+    ll : ndarray (W, G)
+        The closed bodies' log-likelihoods (0 for the others).
     """
     n_w, n_g = level.shape
     n_f = grades.shape[0]

@@ -47,6 +47,18 @@ def _rule_kernel():
     return _rule_compiled
 
 
+#: The one-call steady kernel (:mod:`diskfield._body_jit`); in use when the compiled rule is.
+_body_compiled = ...
+
+
+def _body_kernel():
+    global _body_compiled
+    if _rule_kernel() is None:
+        return None
+    _body_compiled = load_kernel(_body_compiled, "_body_jit")
+    return _body_compiled
+
+
 def compile_kernels() -> None:
     """Compile (or load from numba's cache) every compiled kernel of the likelihood now.
 
@@ -65,8 +77,11 @@ def compile_kernels() -> None:
             np.array([0.5, 4.0]), np.linspace(-6, 6, 5), np.zeros(1), np.array([1.0, 3.0]),
             np.array([0.5]), np.zeros(1), 2)
     kernel.steady_nodes(*args)
-    kernel.steady_loglike(*args, np.ones(1, np.int64), np.zeros((1, 4)), np.zeros((1, 1)),
-                          np.ones((1, 1)), np.zeros((1, 1)))
+    # one body of a detection and an upper limit (``_fused_static``'s layouts)
+    statics = (np.array([[1.0, 0.5]]), np.full((1, 2), 0.1), np.array([[True, False]]),
+               np.array([[False, True]]), np.ones(1, np.int64), np.ones((1, 1), np.int64),
+               np.ones(1, np.int64), *args[6:], np.zeros((1, 4)), *steady.limits_rules(5))
+    _body_kernel().steady_body_loglike(*args[:4], np.full(1, 0.1), _MIN_VAR, *statics)
 
 
 #: Floor on a record's total log variance: a limit without stated error and without
@@ -154,7 +169,8 @@ class Model:
         self._ages = _age_priors(comp, priorset) if envelope.time_dependent else None
         self._obliquity = getattr(priorset, "spin_obliquity", None)
         self._rule_static = _rule_static(self._bodies, self.settings)
-        self._fused = _fused_static(self._bodies, spin, self._obliquity)
+        self._fused = _fused_static(self._bodies, spin, self._obliquity, self.settings,
+                                    self._rule_static)
         self.config = {"profile": profile.name, "envelope": envelope.name, "spin": spin,
                        "prior_files": [str(f) for f in getattr(priorset, "files", ())],
                        "label_ordering": self.ordering.describe()}
@@ -325,26 +341,23 @@ class Model:
         return out
 
     def _fused_loglike(self, p):
-        """Steady envelope, body-shared spin: the compiled distance rule integrates the
-        closed-form bodies in the same pass (``_rule_jit.steady_loglike``); the bodies with
-        upper limits take their integrands here on the nodes it returns. The same rule,
-        integrands and sums as :meth:`_steady_terms` (tested equal to ~1e-12). None when the
-        compiled rule does not apply (no power-law form, numba missing, spin not shared, an
+        """Steady envelope, body-shared spin: the whole per-body log-likelihood (W, G) in one
+        compiled call (:func:`diskfield._body_jit.steady_body_loglike`): variances, the
+        detections' Gaussian, the distance rule with the closed-form bodies integrated in
+        its pass, the bodies with upper limits on the nodes it returns, the sums. The same
+        rule, integrands and sums as :meth:`_steady_terms` (tested equal to ~1e-12). None
+        when it does not apply (no power-law form, numba missing, spin not shared, an
         obliquity prior, a distance prior of another form)."""
-        inputs = self._rule_inputs(p) if self._fused is not None else None
-        if inputs is None:
+        if self._fused is None or self.profile.power_law_form is None or _body_kernel() is None:
             return None
-        var, stats, args = inputs
-        closed, prior = self._fused
-        zbar, v, ln_k = (np.ascontiguousarray(np.where(np.isfinite(stats[1]), a, d))
-                         for a, d in zip(stats, (0.0, 1.0, 0.0)))
-        r, terms, phi, wi, gi, ll = _rule_kernel().steady_loglike(*args, closed, prior, zbar,
-                                                                  v, ln_k)
-        if len(r):
-            terms = terms + self._log_integrand(phi, self._bodies, var, stats, None, p,
-                                                at=(wi, gi))
-            self._node_sums(terms, wi, gi, len(ll), out=ll)
-        return ll
+        from .profiles.ring import MIN_RING_FACTOR
+
+        rows = _form_rows(self.profile.power_law_form(p), len(p["intrinsic_scatter"]))
+        if rows is None:
+            return None
+        sigma = np.ascontiguousarray(p["intrinsic_scatter"], dtype=float)
+        return _body_kernel().steady_body_loglike(*rows, MIN_RING_FACTOR, sigma, _MIN_VAR,
+                                                  *self._fused)
 
     def _setup(self, p):
         """Variances (W, G, n), detection statistics, age rule and distance breakpoints."""
@@ -674,18 +687,32 @@ def _form_rows(form, n_walkers):
     return coef, len(rings), has_break
 
 
-def _fused_static(b, spin, obliquity):
-    """The fused rule's fixed inputs: which bodies it integrates (body-shared spin,
-    detections only: (G,) int) and each body's distance prior as rows [c, k, mu, s] of
-    ln p(r) = c - k ln r - (r - mu)^2 s^2 / 2 (G, 4); None when it does not apply (another
-    spin mode, an obliquity prior, a prior of another form)."""
+def _fused_static(b, spin, obliquity, settings, rule_static):
+    """The one-call steady kernel's fixed inputs (``_body_jit.steady_body_loglike`` after
+    ``min_var``), or None when it does not apply (another spin mode, an obliquity prior, a
+    distance prior without the closed form of :func:`_prior_form`).
+
+    Each body's kind (detections only: closed form in the rule's pass; upper limits with
+    the shared spin integral; a lone upper limit) and its limit columns first, in record
+    order, padded to the most limits of a body that needs the spin integral (the limits
+    kernel's breaks depend on that width: the same as ``steady._subset``)."""
     if spin != "body" or obliquity is not None:
         return None
     rows = [_prior_form(prior) for prior in b.priors]
     if any(row is None for row in rows):
         return None
-    closed = (~(b.needs_x | b.lone_limit)).astype(np.int64)
-    return closed, np.array(rows, dtype=float, order="C")
+    from ._body_jit import CLOSED, LIMITS, LONE_LIMIT
+
+    kind = np.where(b.needs_x, LIMITS, np.where(b.lone_limit, LONE_LIMIT, CLOSED))
+    n_lim = b.lim.sum(axis=1)
+    width = max(int(n_lim[b.needs_x].max()) if b.needs_x.any() else 1, 1)
+    order = np.argsort(~b.lim, axis=1, kind="stable")[:, :width]
+    ints = (lambda a: np.ascontiguousarray(a, dtype=np.int64))
+    return (np.ascontiguousarray(b.z, dtype=float), np.ascontiguousarray(b.var_fixed, float),
+            np.ascontiguousarray(b.det), np.ascontiguousarray(b.lim), ints(kind), ints(order),
+            ints(n_lim), *rule_static, settings.max_crossings,
+            np.array(rows, dtype=float, order="C"),
+            *steady.limits_rules(settings.spin_panel_nodes))
 
 
 def _prior_form(prior):

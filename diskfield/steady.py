@@ -173,15 +173,24 @@ def _compiled_reads(phi, wi, gi, gx, b, args, n_nodes):
     pos[gx] = np.arange(len(gx))
     flat = (lambda a: np.ascontiguousarray(np.broadcast_to(a, (w, g) + a.shape[2:]).reshape(
         (w * g,) + a.shape[2:])))
-    rules = [quad.gauss_legendre_unit(k) for k in (n_nodes, 3, 6, _SUB_NODES)]
-    consts = np.array([_INACTIVE, _SKIP_ABOVE_PEAK, _SUB_RANGE, _NEGLIGIBLE, _DILUTED,
-                       _GENTLE])
     return _kernel().body_spin_with_limits(
         np.ascontiguousarray(phi, float), wi * g + pos[gi], flat(z[None]), flat(vl),
         flat(lim[None]), flat(has_det), flat(np.where(has_det, zbar, 0.0)),
         flat(np.where(has_det, v, 1.0)), flat(np.where(has_det, ln_k, 0.0)),
-        *rules[0], np.ascontiguousarray(quad.monomial_interpolation(n_nodes)),
-        *(a for rule in rules[1:] for a in rule), _Y_GRADES, consts)
+        *limits_rules(n_nodes))
+
+
+def limits_rules(n_nodes):
+    """The compiled limits kernel's fixed inputs: the Y panels' Gauss–Legendre rule of
+    ``n_nodes`` nodes and its monomial interpolation matrix, the reads' 3-, 6- and
+    ``_SUB_NODES``-node rules, the Y grades and the conventions (inactive, skip above peak,
+    sub range, negligible, diluted, gentle), each a C-contiguous float array."""
+    rules = [quad.gauss_legendre_unit(k) for k in (n_nodes, 3, 6, _SUB_NODES)]
+    consts = np.array([_INACTIVE, _SKIP_ABOVE_PEAK, _SUB_RANGE, _NEGLIGIBLE, _DILUTED,
+                       _GENTLE])
+    parts = (*rules[0], quad.monomial_interpolation(n_nodes),
+             *(a for rule in rules[1:] for a in rule), _Y_GRADES, consts)
+    return tuple(np.array(a, dtype=float, order="C") for a in parts)
 
 
 #: Above the detections' peak by this many sds, e^Y N(Y; zbar, V) is below e^-40.5 of its
