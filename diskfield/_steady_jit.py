@@ -112,7 +112,7 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
     nb = grades.shape[0] * (n_l + 1) + 2
     brk = np.empty((n_rows, nb))
     # per panel: q's interpolant (monomial coefficients), whether its first node is finite
-    # (the array code's test), and the spread a read uses (0 where C hardly changes)
+    # (the array code's test), and the spread a read uses (-1 where C hardly changes)
     coef = np.empty((n_rows, nb - 1, n))
     live = np.zeros((n_rows, nb - 1), np.bool_)
     read_spread = np.zeros((n_rows, nb - 1))
@@ -161,7 +161,7 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
             else:
                 for j in range(x6.shape[0]):
                     s += math.exp(horner(r, k, t * x6[j]) - shift) * w6[j]
-            return (math.log(s) + shift) + math.log(t * h)
+            return math.log(s * (t * h)) + shift
         n_sub = min(int(math.ceil(need / sub_range)), 32)
         frac = 1.0 / n_sub
         ln_frac = math.log(frac)
@@ -238,7 +238,8 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
                 panel = log_partial(r, k, 1.0, h, spread[k])
             start = _logaddexp(start, crude[k])
             log_c[r, k + 1] = _logaddexp(log_c[r, k], panel)
-            read_spread[r, k] = 0.0 if log_c[r, k] > bound[k] + diluted else spread[k]
+            # -1: a diluted panel, whose reads take ln C at its start (steady._DILUTED)
+            read_spread[r, k] = -1.0 if log_c[r, k] > bound[k] + diluted else spread[k]
     out = np.empty(phi.shape[0])
     prev_r, p = -1, 0
     for i in range(phi.shape[0]):
@@ -268,7 +269,7 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
         a, h = brk[r, p], brk[r, p + 1] - brk[r, p]
         t = min(max((p_i - a) / h, 0.0), 1.0) if h > 0 else 0.0
         part = -np.inf
-        if t > 0 and live[r, p]:
+        if t > 0 and live[r, p] and read_spread[r, p] >= 0.0:
             part = log_partial(r, p, t, h, read_spread[r, p])
         out[i] = _logaddexp(log_c[r, p], part) - p_i
     return out

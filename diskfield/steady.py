@@ -398,8 +398,8 @@ def _log_partial(qv, t, h, spread):
 _NEGLIGIBLE = 30.0
 
 #: A panel adding at most e^-20 of ln C at its start changes ln C by < 3e-9 whatever the
-#: accuracy of its own integral (the crude Gauss sum on e^q is within a few nats); numerical
-#: convention.
+#: accuracy of its own integral (the crude Gauss sum on e^q is within a few nats), and a read
+#: inside it takes ln C at its start; numerical convention.
 _DILUTED = 20.0
 
 
@@ -426,11 +426,11 @@ def _read_table(table, phi, row):
         a, h = table["a"][ri, p], table["h"][ri, p]
         t = np.clip((phi[inside] - a) / np.where(h > 0, h, 1.0), 0.0, 1.0)
         part = np.full(len(inside), -np.inf)
-        live = (t > 0) & np.isfinite(table["q"][ri, p, 0])
         # where ln C at the panel start exceeds the panel's whole bound by _DILUTED nats, the
-        # read's own part needs no relative accuracy: one short rule, whatever the spread
-        spread = np.where(table["log_c"][ri, p] > table["bound"][ri, p] + _DILUTED, 0.0,
-                          table["range"][ri, p])
-        part[live] = _log_partial(table["q"][ri, p][live], t[live], h[live], spread[live])
+        # read's own part changes ln C by < 3e-9: it is not taken
+        diluted = table["log_c"][ri, p] > table["bound"][ri, p] + _DILUTED
+        live = (t > 0) & np.isfinite(table["q"][ri, p, 0]) & ~diluted
+        part[live] = _log_partial(table["q"][ri, p][live], t[live], h[live],
+                                  table["range"][ri, p][live])
         out[inside] = np.logaddexp(table["log_c"][ri, p], part) - phi[inside]
     return out, idx < 0
