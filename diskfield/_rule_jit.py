@@ -96,6 +96,56 @@ def _refine(lo, hi, f_lo, f_hi, c, n_rings, has_break, mf, level):
 
 
 @njit(cache=True)
+def _insertion_sort(a, m):
+    """Sort a[:m] in place: a few dozen breaks, mostly in sorted runs (faster here than
+    ``np.sort``'s introsort)."""
+    for i in range(1, m):
+        x = a[i]
+        j = i - 1
+        while j >= 0 and a[j] > x:
+            a[j + 1] = a[j]
+            j -= 1
+        a[j + 1] = x
+
+
+@njit(cache=True)
+def _monotone_runs(phi, runs):
+    """Split ``phi`` (S,) into runs over which it is monotone (equal neighbours continue a
+    run); run k spans indices runs[k]..runs[k + 1] (neighbouring runs share their end).
+    Returns the number of runs."""
+    n = phi.shape[0]
+    runs[0] = 0
+    n_runs = 0
+    direction = 0
+    for i in range(1, n):
+        d = phi[i] - phi[i - 1]
+        s = 1 if d > 0 else (-1 if d < 0 else 0)
+        if s != 0:
+            if direction != 0 and s != direction:
+                n_runs += 1
+                runs[n_runs] = i - 1
+            direction = s
+    runs[n_runs + 1] = max(n - 1, 0)
+    return n_runs + 1
+
+
+@njit(cache=True)
+def _sign_change(phi, level, i0, i1):
+    """The interval (i, i + 1) of a monotone run i0..i1 where phi - level changes sign
+    (``phi - level > 0`` differs at its ends), or -1 when it does not."""
+    pos = phi[i0] - level > 0
+    if (phi[i1] - level > 0) == pos:
+        return -1
+    while i1 - i0 > 1:
+        mid = (i0 + i1) >> 1
+        if (phi[mid] - level > 0) == pos:
+            i0 = mid
+        else:
+            i1 = mid
+    return i0
+
+
+@njit(cache=True)
 def _tail_width(centre, level, scale, c, n_rings, has_break, mf):
     """``likelihood._tail_width`` at one point."""
     h = 1e-4 * max(scale, 1e-3) * max(centre, 0.1)
@@ -202,6 +252,7 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
     r_min, r_max = lo.min(), hi.max()
     scout = np.empty(n_scout)
     phi_s = np.empty(n_scout)
+    runs = np.empty(n_scout + 1, np.int64)
     feat = np.empty(max(n_feat, 1))
     brk = np.empty(n_brk)
     cross = np.empty(max_count)
@@ -231,28 +282,34 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
             feat[k_f] = c[2]
         for i in range(n_scout):
             scout[i] = _clip(scout[i], r_min, r_max)
-        scout.sort()
+        _insertion_sort(scout, n_scout)
         for i in range(n_scout):
             phi_s[i] = log_field(scout[i], c, n_rings, has_break, min_factor)
+        # runs of the scout grid over which ln R is monotone (ties continue a run): a level
+        # crosses each at most once, so a body's crossings are found by bisection per run
+        n_runs = _monotone_runs(phi_s, runs)
         for g in range(n_g):
             lev, sc, a_lo, a_hi = level[w, g], scale[w, g], lo[g], hi[g]
-            # first crossings of the level inside the support (``quadrature.first_crossings``)
+            # first crossings of the level inside the support (``quadrature.first_crossings``:
+            # the same intervals, in the same order)
             n_found = 0
-            for i in range(n_scout - 1):
+            for k in range(n_runs):
                 if n_found == max_count:
                     break
+                i = _sign_change(phi_s, lev, runs[k], runs[k + 1])
+                if i < 0:
+                    continue
                 mid = 0.5 * (scout[i + 1] + scout[i])
                 if not (mid > a_lo and mid < a_hi):
                     continue
                 f0, f1 = phi_s[i] - lev, phi_s[i + 1] - lev
-                if (f0 > 0) != (f1 > 0):
-                    x0, x1 = scout[i], scout[i + 1]
-                    cross[n_found] = _refine(x0, x1, f0, f1, c, n_rings, has_break,
-                                             min_factor, lev)
-                    slope = (f1 - f0) / max(x1 - x0, 1e-300)
-                    width[n_found] = sc / max(abs(slope), 1e-12)
-                    found[n_found] = True
-                    n_found += 1
+                x0, x1 = scout[i], scout[i + 1]
+                cross[n_found] = _refine(x0, x1, f0, f1, c, n_rings, has_break, min_factor,
+                                         lev)
+                slope = (f1 - f0) / max(x1 - x0, 1e-300)
+                width[n_found] = sc / max(abs(slope), 1e-12)
+                found[n_found] = True
+                n_found += 1
             for k in range(n_found, max_count):
                 found[k] = False
                 cross[k] = a_lo
@@ -275,14 +332,24 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
                 cross[0] = centre
                 width[0] = _tail_width(centre, lev, sc, c, n_rings, has_break, min_factor)
             # breaks: base, graded around each crossing, the nearest support end, features
+            # only breaks inside the support are stored, and each support end once if any
+            # break fell on or beyond it: the same distinct breaks as clipping them all,
+            # hence the same panels of positive width, with less to sort
             m = 0
             for i in range(base.shape[1]):
                 brk[m] = base[g, i]
                 m += 1
+            at_lo, at_hi = False, False
             for k in range(max(n_found, 1)):   # unused slots would only add breaks at lo
                 for i in range(n_graded):
-                    brk[m] = _clip(cross[k] + width[k] * sym[i], a_lo, a_hi)
-                    m += 1
+                    x = cross[k] + width[k] * sym[i]
+                    if x > a_lo and x < a_hi:
+                        brk[m] = x
+                        m += 1
+                    elif x >= a_hi:
+                        at_hi = True
+                    else:
+                        at_lo = True
             ph_lo = log_field(a_lo, c, n_rings, has_break, min_factor)
             ph_hi = log_field(a_hi, c, n_rings, has_break, min_factor)
             use_lo = abs(ph_lo - lev) <= abs(ph_hi - lev)
@@ -290,13 +357,22 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
             inward = 1.0 if use_lo else -1.0
             e_w = _tail_width(_clip(edge + 1e-9 * inward, a_lo, a_hi), lev, sc, c, n_rings,
                               has_break, min_factor)
-            for i in range(n_f):
-                brk[m] = _clip(edge + (inward * e_w) * grades[i], a_lo, a_hi)
+            for i in range(n_f + n_feat):
+                x = edge + (inward * e_w) * grades[i] if i < n_f else feat[i - n_f]
+                if x > a_lo and x < a_hi:
+                    brk[m] = x
+                    m += 1
+                elif x >= a_hi:
+                    at_hi = True
+                else:
+                    at_lo = True
+            if at_lo:
+                brk[m] = a_lo
                 m += 1
-            for i in range(n_feat):
-                brk[m] = _clip(feat[i], a_lo, a_hi)
+            if at_hi:
+                brk[m] = a_hi
                 m += 1
-            brk[:m].sort()
+            _insertion_sort(brk, m)
             # Gauss–Legendre nodes of the panels of positive width
             here = fused and closed[g] == 1
             if fused:
