@@ -24,28 +24,47 @@ from numba import njit
 from ._ndtr_jit import log_ndtr
 
 
+#: ln(1e-17): a ring factor 1 + x with |x| below 1e-17 leaves ln R unchanged to double
+#: precision (ln(1 + x) = x - ..., and ln R is O(1)); its exp is not taken.
+_LN_TINY = math.log(1e-17)
+
+
+@njit(cache=True)
+def _ring_constants(amp, width):
+    """A ring's inverse width and the z^2 above which |A| exp(-z^2 / 2) < 1e-17 (at most
+    1491, where exp underflows to 0)."""
+    inv = 1.0 / width if width > 0 else 0.0
+    if amp == 0.0:
+        return inv, -1.0
+    return inv, min(1491.0, 2.0 * (math.log(abs(amp)) - _LN_TINY))
+
+
 @njit(cache=True)
 def _coefficients(form, w):
-    """Row ``w`` of ``form`` as a tuple: passed by value, so the per-node calls below carry
-    no array (numba reference-counts every array argument of a call, which cost more than
-    the arithmetic here)."""
+    """Row ``w`` of ``form`` as a tuple, with per-walker constants appended: each ring's
+    inverse width and z^2 cut (:func:`_ring_constants`), ln of the break radius. Passed by
+    value, so the per-node calls below carry no array (numba reference-counts every array
+    argument of a call, which cost more than the arithmetic here)."""
+    inv1, cut1 = _ring_constants(form[w, 4], form[w, 6])
+    inv2, cut2 = _ring_constants(form[w, 7], form[w, 9])
+    ln_break = math.log(form[w, 2]) if form[w, 2] > 0 else 0.0
     return (form[w, 0], form[w, 1], form[w, 2], form[w, 3], form[w, 4], form[w, 5],
-            form[w, 6], form[w, 7], form[w, 8], form[w, 9])
+            form[w, 6], form[w, 7], form[w, 8], form[w, 9], inv1, inv2, cut1, cut2, ln_break)
 
 
 @njit(cache=True)
 def log_field(r, c, n_rings, has_break, min_factor):
-    """ln R at one distance ``r`` [AU] for the coefficients ``c`` (a row of ``form``)."""
+    """ln R at one distance ``r`` [AU] for the coefficients ``c`` (:func:`_coefficients`)."""
     lr = math.log(r)
     if has_break:
-        lrb = math.log(c[2])
+        lrb = c[14]
         val = c[0] - c[1] * min(lr, lrb) - c[3] * max(lr - lrb, 0.0)
     else:
         val = c[0] - c[1] * lr
     for k in range(n_rings):
-        z = (r - c[5 + 3 * k]) / c[6 + 3 * k]
-        if z * z > 1491.0:
-            continue  # exp(-0.5 z^2) underflows to 0 below -745.2: the factor is exactly 1
+        z = (r - c[5 + 3 * k]) * c[10 + k]
+        if z * z > c[12 + k]:
+            continue  # |A| exp(-z^2 / 2) < 1e-17: ln(1 + x) = x adds nothing to ln R
         a_g = max(c[4 + 3 * k] * math.exp(-0.5 * z * z), min_factor - 1.0)
         # ln(1 + x) = x - x^2/2 + ...: x itself to double precision below 1e-17
         val += a_g if abs(a_g) < 1e-17 else math.log1p(a_g)
