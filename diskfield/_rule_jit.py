@@ -21,7 +21,7 @@ import math
 import numpy as np
 from numba import njit
 
-from ._ndtr_jit import log_ndtr
+from ._ndtr_jit import log1p, log_ndtr
 
 
 #: ln(1e-17): a ring factor 1 + x with |x| below 1e-17 leaves ln R unchanged to double
@@ -67,7 +67,7 @@ def log_field(r, c, n_rings, has_break, min_factor):
             continue  # |A| exp(-z^2 / 2) < 1e-17: ln(1 + x) = x adds nothing to ln R
         a_g = max(c[4 + 3 * k] * math.exp(-0.5 * z * z), min_factor - 1.0)
         # ln(1 + x) = x - x^2/2 + ...: x itself to double precision below 1e-17
-        val += a_g if abs(a_g) < 1e-17 else math.log1p(a_g)
+        val += a_g if abs(a_g) < 1e-17 else log1p(a_g)
     return val
 
 

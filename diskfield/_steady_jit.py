@@ -17,7 +17,7 @@ import math
 import numpy as np
 from numba import njit
 
-from ._ndtr_jit import log_ndtr
+from ._ndtr_jit import log1p, log_ndtr
 
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 
@@ -29,8 +29,8 @@ def _logaddexp(a, b):
     if a == b:
         return a + math.log(2.0) if a != -np.inf else a
     if a > b:
-        return a + math.log1p(math.exp(b - a))
-    return b + math.log1p(math.exp(a - b))
+        return a + log1p(math.exp(b - a))
+    return b + log1p(math.exp(a - b))
 
 
 @njit(cache=True)

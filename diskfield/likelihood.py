@@ -160,6 +160,7 @@ class Model:
         self.priors = tuple(p for p in all_priors if not p.is_fixed)
         self.ordering = label_ordering(profile, dict(zip(names, all_priors)),
                                        self.parameter_names)
+        self._support_bounds = _support_bounds(self.priors)
         self.body_names = comp.body_names
         self.n_records = len(comp.records)
         self.n_bodies = len(comp.bodies)
@@ -223,8 +224,15 @@ class Model:
 
     def _in_support(self, t2):
         """Rows of ``t2`` (W, P) inside every parameter's prior support (the likelihood is
-        defined there whatever the label order)."""
-        return np.isfinite(self._log_prior_product(t2))
+        defined there whatever the label order): where the log prior is finite. For the
+        families whose density is positive and finite on their whole closed, finite support
+        (uniform, log-uniform, truncated normal, half-normal with a top) that is a bounds
+        check; the others take their ``log_prob`` (a normal's overflows far out)."""
+        lo, hi, exact = self._support_bounds
+        ok = np.all((t2 >= lo) & (t2 <= hi), axis=1)
+        for i in exact:
+            ok &= np.isfinite(self.priors[i].log_prob(t2[:, i]))
+        return ok
 
     def prior_transform(self, u):
         """Map the unit cube to parameter values (nested sampling).
@@ -589,6 +597,19 @@ def _parameter_priors(priorset, names):
     return tuple(priorset.parameters[n] for n in names)
 
 
+
+
+def _support_bounds(priors):
+    """Lower and upper support bounds (P,) of the parameter priors, and the indices of those
+    whose finite log density is not implied by lying inside them (see
+    ``Model._in_support``)."""
+    from .priorspec import HalfNormal, LogUniform, TruncatedNormal
+
+    bounded = (Uniform, LogUniform, TruncatedNormal, HalfNormal)
+    sup = np.array([p.support for p in priors], dtype=float).reshape(len(priors), 2)
+    exact = [i for i, p in enumerate(priors)
+             if type(p) not in bounded or not np.all(np.isfinite(sup[i]))]
+    return sup[:, 0], sup[:, 1], tuple(exact)
 
 
 def _distance_priors(comp, priorset):

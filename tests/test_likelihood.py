@@ -733,3 +733,24 @@ def test_aged_shared_spin_body_matches_a_dense_reference(pset, values, limits, r
     reference = _aged_body_spin_reference(model, theta, z, var, lim)
     # accuracy requirement: < 0.01 in log-likelihood (DESIGN §4)
     assert model.log_likelihood(theta) == pytest.approx(reference, abs=0.01)
+
+
+@pytest.mark.parametrize("profile", ["smooth", "two-ring", "accretion"])
+def test_support_check_is_where_the_log_prior_is_finite(pset, profile):
+    """The likelihood's support check (bounds for the bounded families, log_prob for the
+    others) marks exactly the rows whose summed log prior is finite: inside, on the bounds,
+    just outside, NaN, infinities and huge values (common practice, no source: two forms of
+    one definition held equal)."""
+    model = _demo_model(profile, pset)
+    rng = np.random.default_rng(8)
+    theta = np.column_stack([p.sample(rng, 200) for p in model.priors])
+    lo, hi = np.array([p.support for p in model.priors], float).T
+    for i in range(theta.shape[1]):
+        rows = rng.choice(200, 40, replace=False)
+        picks = np.array([lo[i], hi[i], np.nextafter(lo[i], -np.inf),
+                          np.nextafter(hi[i], np.inf), np.nan, np.inf, -np.inf, 1e300, -1e300,
+                          0.0])
+        theta[rows, i] = picks[rng.integers(0, len(picks), 40)]
+    expected = np.isfinite(model._log_prior_product(theta))
+    assert 0 < expected.sum() < len(theta)
+    np.testing.assert_array_equal(model._in_support(theta), expected)

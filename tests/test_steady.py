@@ -197,3 +197,17 @@ def test_tabulated_log_ndtr_matches_scipy():
                                special.log_ndtr(below), rtol=1e-13)
     assert [_ndtr_jit.log_ndtr(v) for v in (8.5, 40.0, np.inf)] == [0.0, 0.0, 0.0]
     assert _ndtr_jit.log_ndtr(-np.inf) == -np.inf and np.isnan(_ndtr_jit.log_ndtr(np.nan))
+
+
+@pytest.mark.skipif(steady._kernel() is None, reason="numba not importable")
+def test_compiled_log1p_matches_numpy():
+    # reference library: numpy.log1p, on both sides of the series switch at |x| = 1e-4,
+    # near -1 and far above; held to 2e-16 absolute (the kernels' sums need absolute accuracy)
+    # and 1e-12 relative
+    from diskfield import _ndtr_jit
+
+    x = np.concatenate([-np.logspace(-20, np.log10(0.999999), 400),
+                        np.logspace(-20, 8, 400), [0.0, 1e-4, -1e-4, 1.0001e-4, -0.9999e-4]])
+    got = np.array([_ndtr_jit.log1p(v) for v in x])
+    ref = np.log1p(x)
+    np.testing.assert_allclose(got, ref, rtol=1e-12, atol=2e-16)
