@@ -10,11 +10,13 @@ Run:  python benchmarks/bench_likelihood.py [--walkers 64] [--repeat 10] [--aged
     parameters, a Python loop over records) per call; (d) scaling over synthetic
     compilations of 30, 100, 300 and 1000 records; (e) the compiled kernels (distance rule,
     limits) against the same rules in array code, same walkers; (f) ln Phi per element: the
-    compiled kernels' table against ``erfc`` and scipy.
+    compiled kernels' table against ``erfc`` and scipy; exp per element: inlined
+    (``exp_ftz``) against the C library and numpy.
 """
 from __future__ import annotations
 
 import argparse
+import math
 import time
 
 import numpy as np
@@ -158,11 +160,11 @@ def main(argv=None):
 
 
 def _special_function(rng):
-    """(f) ln Phi per element: the kernels' table, the C library's erfc, scipy's log_ndtr."""
+    """(f) ln Phi per element (the kernels' table, the C library's erfc, scipy) and exp."""
     try:
         from numba import njit
 
-        from diskfield import _ndtr_jit
+        from diskfield import _special_jit
     except ImportError:
         print("\n(f) numba not importable")
         return
@@ -178,7 +180,7 @@ def _special_function(rng):
 
     x = rng.normal(-2.0, 4.0, 200_000)
     out = np.empty_like(x)
-    table, erfc = summed(_ndtr_jit.log_ndtr), summed(_ndtr_jit.log_ndtr_erfc)
+    table, erfc = summed(_special_jit.log_ndtr), summed(_special_jit.log_ndtr_erfc)
     t_t = _timed(lambda: table(x), 5)
     t_e = _timed(lambda: erfc(x), 5)
     t_s = _timed(lambda: special.log_ndtr(x, out=out), 5)
@@ -186,6 +188,14 @@ def _special_function(rng):
     print(f"\n(f) ln Phi per element, x ~ N(-2, 4^2): table {per * t_t:.1f} ns, erfc "
           f"{per * t_e:.1f} ns, scipy.special.log_ndtr {per * t_s:.1f} ns (erfc / table "
           f"{t_e / t_t:.1f}x)")
+    inline, libm = summed(_special_jit.exp_ftz), summed(math.exp)
+    y = rng.uniform(-40.0, 0.0, len(x))
+    t_i = _timed(lambda: inline(y), 5)
+    t_m = _timed(lambda: libm(y), 5)
+    t_n = _timed(lambda: np.exp(y, out=out), 5)
+    print(f"    exp per element, x ~ U(-40, 0): inlined {per * t_i:.1f} ns, C library "
+          f"{per * t_m:.1f} ns, numpy.exp {per * t_n:.1f} ns (C library / inlined "
+          f"{t_m / t_i:.1f}x)")
 
 
 def _compiled_versus_array(comp, pset, w, rng, args):

@@ -5,6 +5,10 @@ ln sum_q w_q p(record | ln B = y + ln T(t_q)): a detection's Gaussian density, a
 normal CDF, summed over the record's age nodes of positive weight in linear space, and again
 in logs where that sum underflows. The array form is :func:`diskfield.aged._records_sum`
 (the same sums; tested equal to ~1e-12).
+
+The linear sums take exp from :func:`diskfield._special_jit.exp_ftz` and a limit's CDF as
+exp of the tabulated ln Phi; their additions may be reordered (``fastmath`` reassociation
+only: no assumption about NaN or inf), so the detections' loop vectorises.
 """
 from __future__ import annotations
 
@@ -13,15 +17,14 @@ import math
 import numpy as np
 from numba import njit
 
-from ._ndtr_jit import log_ndtr
+from ._special_jit import exp_ftz, log_ndtr
 
-_SQRT_HALF = math.sqrt(0.5)
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 #: Below this linear sum the record is summed again in logs (convention, as in aged.py).
 _LINEAR_FLOOR = 1e-280
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"reassoc", "contract"})
 def records_sum(y, wi, z, var, is_lim, lf, lw, n_q):
     """Sum over records of ln sum_q w_q p(record | y + ln T_q), (P,).
 
@@ -49,9 +52,9 @@ def records_sum(y, wi, z, var, is_lim, lf, lw, n_q):
             n = n_q[w, j]
             tot = 0.0
             if is_lim[j]:
-                s = _SQRT_HALF / math.sqrt(v)
+                s = -1.0 / math.sqrt(v)
                 for q in range(n):
-                    tot += math.exp(lw[w, j, q]) * 0.5 * math.erfc((y[p] + lf[w, j, q] - z[j]) * s)
+                    tot += exp_ftz(lw[w, j, q] + log_ndtr((y[p] + lf[w, j, q] - z[j]) * s))
                 if tot >= _LINEAR_FLOOR:
                     acc += math.log(tot)
                     continue
@@ -64,14 +67,14 @@ def records_sum(y, wi, z, var, is_lim, lf, lw, n_q):
                     continue
                 tot = 0.0
                 for q in range(n):
-                    tot += math.exp(lw[w, j, q] + log_ndtr((z[j] - y[p] - lf[w, j, q]) / sd)
+                    tot += exp_ftz(lw[w, j, q] + log_ndtr((z[j] - y[p] - lf[w, j, q]) / sd)
                                     - top)
                 acc += math.log(tot) + top
                 continue
             c = -0.5 / v
             for q in range(n):
                 d = y[p] + lf[w, j, q] - z[j]
-                tot += math.exp(c * d * d + lw[w, j, q])
+                tot += exp_ftz(c * d * d + lw[w, j, q])
             norm = -0.5 * math.log(v) - _LN_SQRT_2PI
             if tot >= _LINEAR_FLOOR:
                 acc += math.log(tot) + norm
@@ -83,7 +86,7 @@ def records_sum(y, wi, z, var, is_lim, lf, lw, n_q):
             tot = 0.0
             for q in range(n):
                 d = y[p] + lf[w, j, q] - z[j]
-                tot += math.exp(c * d * d + lw[w, j, q] - top)
+                tot += exp_ftz(c * d * d + lw[w, j, q] - top)
             acc += math.log(tot) + top + norm
         out[p] = acc
     return out

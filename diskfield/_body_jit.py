@@ -23,7 +23,7 @@ import math
 import numpy as np
 from numba import njit
 
-from ._ndtr_jit import log_ndtr
+from ._special_jit import log_ndtr
 from ._rule_jit import _rule
 from ._steady_jit import body_spin_with_limits
 

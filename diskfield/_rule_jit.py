@@ -21,7 +21,7 @@ import math
 import numpy as np
 from numba import njit
 
-from ._ndtr_jit import log1p, log_ndtr
+from ._special_jit import log1p, log_ndtr
 
 
 #: ln(1e-17): a ring factor 1 + x with |x| below 1e-17 leaves ln R unchanged to double

@@ -8,7 +8,7 @@ it, which makes the limits part several times faster (``benchmarks/bench_likelih
 The table keeps each panel's monomial coefficients of q's interpolant (not its node values),
 so a read costs only its own short Gauss rule.
 
-ln Phi is read from the table of :mod:`diskfield._ndtr_jit` (numba has no ``scipy.special``).
+ln Phi is read from the table of :mod:`diskfield._special_jit` (numba has no ``scipy.special``).
 """
 from __future__ import annotations
 
@@ -17,7 +17,7 @@ import math
 import numpy as np
 from numba import njit
 
-from ._ndtr_jit import log1p, log_ndtr
+from ._special_jit import log1p, log_ndtr
 
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 

@@ -170,10 +170,10 @@ def test_compiled_reads_do_not_depend_on_their_order():
 @pytest.mark.skipif(steady._kernel() is None, reason="numba not importable")
 def test_compiled_log_ndtr_matches_scipy():
     # reference library: scipy.special.log_ndtr, across both tails and the series switch
-    from diskfield import _ndtr_jit
+    from diskfield import _special_jit
 
     x = np.concatenate([np.linspace(-80.0, 40.0, 4001), [-20.0, -19.999, -20.001, 6.0, 6.001]])
-    exact = np.array([_ndtr_jit.log_ndtr_erfc(v) for v in x])
+    exact = np.array([_special_jit.log_ndtr_erfc(v) for v in x])
     # above x = 6 scipy returns -Phi(-x) and the kernel log1p(-Phi(-x)): they differ by
     # Phi(-x)^2 / 2 < 1e-18, hence the absolute floor
     np.testing.assert_allclose(exact, special.log_ndtr(x), rtol=1e-13, atol=1e-15)
@@ -185,18 +185,18 @@ def test_tabulated_log_ndtr_matches_scipy():
     # pieces: ~6e-13 absolute inside it (its own design figure), held here to 1e-11 on a
     # grid 7x finer than its pieces with off-node points, relative 1e-13 in the lower series,
     # exactly 0 at and above its top end; -inf and NaN pass through
-    from diskfield import _ndtr_jit
+    from diskfield import _special_jit
 
-    inside = np.linspace(_ndtr_jit._X0, _ndtr_jit._X1, 5431)[:-1] + 1e-7
-    got = np.array([_ndtr_jit.log_ndtr(v) for v in inside])
+    inside = np.linspace(_special_jit._X0, _special_jit._X1, 5431)[:-1] + 1e-7
+    got = np.array([_special_jit.log_ndtr(v) for v in inside])
     np.testing.assert_allclose(got, special.log_ndtr(inside), rtol=0, atol=1e-11)
-    edge = np.nextafter(_ndtr_jit._X1, 0.0)     # rounds to the table's end: the last piece
-    assert abs(_ndtr_jit.log_ndtr(edge) - special.log_ndtr(edge)) < 1e-15
-    below = np.linspace(-300.0, _ndtr_jit._X0, 1001)[:-1]
-    np.testing.assert_allclose([_ndtr_jit.log_ndtr(v) for v in below],
+    edge = np.nextafter(_special_jit._X1, 0.0)     # rounds to the table's end: the last piece
+    assert abs(_special_jit.log_ndtr(edge) - special.log_ndtr(edge)) < 1e-15
+    below = np.linspace(-300.0, _special_jit._X0, 1001)[:-1]
+    np.testing.assert_allclose([_special_jit.log_ndtr(v) for v in below],
                                special.log_ndtr(below), rtol=1e-13)
-    assert [_ndtr_jit.log_ndtr(v) for v in (8.5, 40.0, np.inf)] == [0.0, 0.0, 0.0]
-    assert _ndtr_jit.log_ndtr(-np.inf) == -np.inf and np.isnan(_ndtr_jit.log_ndtr(np.nan))
+    assert [_special_jit.log_ndtr(v) for v in (8.5, 40.0, np.inf)] == [0.0, 0.0, 0.0]
+    assert _special_jit.log_ndtr(-np.inf) == -np.inf and np.isnan(_special_jit.log_ndtr(np.nan))
 
 
 @pytest.mark.skipif(steady._kernel() is None, reason="numba not importable")
@@ -204,10 +204,27 @@ def test_compiled_log1p_matches_numpy():
     # reference library: numpy.log1p, on both sides of the series switch at |x| = 1e-4,
     # near -1 and far above; held to 2e-16 absolute (the kernels' sums need absolute accuracy)
     # and 1e-12 relative
-    from diskfield import _ndtr_jit
+    from diskfield import _special_jit
 
     x = np.concatenate([-np.logspace(-20, np.log10(0.999999), 400),
                         np.logspace(-20, 8, 400), [0.0, 1e-4, -1e-4, 1.0001e-4, -0.9999e-4]])
-    got = np.array([_ndtr_jit.log1p(v) for v in x])
+    got = np.array([_special_jit.log1p(v) for v in x])
     ref = np.log1p(x)
     np.testing.assert_allclose(got, ref, rtol=1e-12, atol=2e-16)
+
+
+@pytest.mark.skipif(steady._kernel() is None, reason="numba not importable")
+def test_compiled_exp_matches_numpy():
+    # reference library: numpy.exp, over the whole range the kernels use and its edges; held
+    # to 1e-15 relative (the Taylor series to degree 12 on |r| <= ln 2 / 2 leaves < 4e-16)
+    from diskfield import _special_jit
+
+    x = np.concatenate([np.linspace(-708.0, 709.0, 20001), np.linspace(-1.0, 1.0, 2001),
+                        [0.0, -0.0, 1e-300, -1e-300, 0.5 * np.log(2.0), -0.5 * np.log(2.0)]])
+    got = np.array([_special_jit.exp_ftz(v) for v in x])
+    np.testing.assert_allclose(got, np.exp(x), rtol=1e-15, atol=0.0)
+    # below e^-708 the kernels' sums treat values as underflowed: flushed to zero; above 709
+    # (e^709.78 overflows) infinity; NaN passes through
+    assert [_special_jit.exp_ftz(v) for v in (-708.5, -745.2, -1e6, -np.inf)] == [0.0] * 4
+    assert [_special_jit.exp_ftz(v) for v in (709.5, 1e6, np.inf)] == [np.inf] * 3
+    assert np.isnan(_special_jit.exp_ftz(np.nan))
