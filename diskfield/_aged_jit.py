@@ -17,7 +17,7 @@ import math
 import numpy as np
 from numba import njit
 
-from ._special_jit import exp_ftz, log_ndtr
+from ._special_jit import exp_ftz, log_ndtr, log_ndtr_ftz
 
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 #: Below this linear sum the record is summed again in logs (convention, as in aged.py).
@@ -54,7 +54,7 @@ def records_sum(y, wi, z, var, is_lim, lf, lw, n_q):
             if is_lim[j]:
                 s = -1.0 / math.sqrt(v)
                 for q in range(n):
-                    tot += exp_ftz(lw[w, j, q] + log_ndtr((y[p] + lf[w, j, q] - z[j]) * s))
+                    tot += exp_ftz(lw[w, j, q] + log_ndtr_ftz((y[p] + lf[w, j, q] - z[j]) * s))
                 if tot >= _LINEAR_FLOOR:
                     acc += math.log(tot)
                     continue

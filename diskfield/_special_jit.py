@@ -87,6 +87,23 @@ def log_ndtr(x):
                                                                        + t * c[k, 5]))))
 
 
+@njit(cache=True, inline="always")
+def log_ndtr_ftz(x):
+    """ln Phi(x) from the table without branches, for sums of Phi in linear space: as
+    :func:`log_ndtr` for x >= ``_X0`` (-40), and -1000 below it, where Phi(x) < 1e-349
+    underflows to 0 anyway (so ``exp_ftz(lw + log_ndtr_ftz(x))`` is exact to the sum's
+    precision; NaN passes through). Selects only, so a loop over it can vectorise."""
+    xc = min(max(x, _X0), _X1)
+    u = (xc - _X0) * _INV_STEP
+    k = min(np.int64(u), _LAST)
+    t = u - k
+    v = _TABLE[k, 0] + t * (_TABLE[k, 1] + t * (_TABLE[k, 2] + t * (_TABLE[k, 3] + t * (
+        _TABLE[k, 4] + t * _TABLE[k, 5]))))
+    v = v if x < _X1 else 0.0
+    v = v if x >= _X0 else -1000.0
+    return v if x == x else x
+
+
 @intrinsic
 def _bits_as_float(typingctx, bits):
     """The float64 whose IEEE bits are the int64 ``bits`` (a bit cast)."""

@@ -228,3 +228,17 @@ def test_compiled_exp_matches_numpy():
     assert [_special_jit.exp_ftz(v) for v in (-708.5, -745.2, -1e6, -np.inf)] == [0.0] * 4
     assert [_special_jit.exp_ftz(v) for v in (709.5, 1e6, np.inf)] == [np.inf] * 3
     assert np.isnan(_special_jit.exp_ftz(np.nan))
+
+
+@pytest.mark.skipif(steady._kernel() is None, reason="numba not importable")
+def test_branch_free_log_ndtr_is_the_table_above_its_floor():
+    # reference library: scipy.special.log_ndtr above x = -40 (to the table's 1e-11); below
+    # it -1000, whose exp is 0 as Phi(x) < 1e-349 is in double precision
+    from diskfield import _special_jit
+
+    x = np.concatenate([np.linspace(-40.0, 12.0, 20001), [8.5, np.nextafter(8.5, 0.0), 40.0]])
+    got = np.array([_special_jit.log_ndtr_ftz(v) for v in x])
+    np.testing.assert_allclose(got, special.log_ndtr(x), rtol=0.0, atol=1e-11)
+    below = [_special_jit.log_ndtr_ftz(v) for v in (np.nextafter(-40.0, -41.0), -300.0, -np.inf)]
+    assert below == [-1000.0] * 3 and float(special.ndtr(-40.0)) == 0.0
+    assert _special_jit.log_ndtr_ftz(np.inf) == 0.0 and np.isnan(_special_jit.log_ndtr_ftz(np.nan))
