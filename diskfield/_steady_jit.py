@@ -273,3 +273,156 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
             part = log_partial(r, p, t, h, read_spread[r, p])
         out[i] = _logaddexp(log_c[r, p], part) - p_i
     return out
+
+
+@njit(cache=True)
+def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, consts):
+    """``steady._cumulative_table`` then ``steady._read_table`` in one compiled pass: the
+    cumulative table ln C of rows with breaks ``brk`` (R, B), node values ``q`` (R, (B - 1) n)
+    and ln C at each row's start ``tail0`` (R,), read at flat points ``phi`` (N,) of rows
+    ``row`` (N,); returns ln[e^-phi C(phi)] (N,). Every read must lie at or above its row's
+    first break (the caller's table starts below every read; a read below it is NaN).
+
+    The same rules as :func:`body_spin_with_limits` (its table part, with q given instead
+    of computed; the two are kept alike by ``tests/test_agedspin.py``, which holds this one
+    to the array code). ``consts`` as there.
+    """
+    sub_range, negligible, diluted, gentle = consts[2], consts[3], consts[4], consts[5]
+    n_rows, nb = brk.shape
+    n = xn.shape[0]
+    coef = np.empty((n_rows, nb - 1, n))
+    live = np.zeros((n_rows, nb - 1), np.bool_)
+    read_spread = np.zeros((n_rows, nb - 1))
+    log_c = np.empty((n_rows, nb))
+    crude = np.empty(nb - 1)
+    spread = np.empty(nb - 1)
+    bound = np.empty(nb - 1)
+    sub_hi = np.empty(32)
+    sub_part = np.empty(32)
+    sub_vals = np.empty(x8.shape[0])
+    ln_w8 = np.empty(x8.shape[0])
+    for j in range(x8.shape[0]):
+        ln_w8[j] = math.log(w8[j])
+
+    # inner functions: numba inlines them and the arrays stay this function's own (see
+    # body_spin_with_limits)
+    def horner(r, k, x):
+        acc = coef[r, k, n - 1] * x + coef[r, k, n - 2]
+        for j in range(n - 3, -1, -1):
+            acc = acc * x + coef[r, k, j]
+        return acc
+
+    def log_partial(r, k, t, h, spread):
+        """ln int_0^t h exp(q~(s)) ds for panel ``k`` of row ``r`` (``steady._log_partial``)."""
+        need = spread * t
+        if need <= 6.0:
+            shift = coef[r, k, 0]
+            s = 0.0
+            if need <= 1.5:
+                for j in range(x3.shape[0]):
+                    s += math.exp(horner(r, k, t * x3[j]) - shift) * w3[j]
+            else:
+                for j in range(x6.shape[0]):
+                    s += math.exp(horner(r, k, t * x6[j]) - shift) * w6[j]
+            return math.log(s * (t * h)) + shift
+        n_sub = min(int(math.ceil(need / sub_range)), 32)
+        frac = 1.0 / n_sub
+        ln_frac = math.log(frac)
+        best = -np.inf
+        for i in range(n_sub):
+            s0 = i * frac
+            sub_hi[i] = max(horner(r, k, t * s0), horner(r, k, t * (s0 + frac)))
+            best = max(best, sub_hi[i])
+        top = -np.inf
+        n_live = 0
+        for i in range(n_sub):
+            sub_part[i] = -np.inf
+            if sub_hi[i] < best - negligible:
+                continue
+            n_live += 1
+            s0 = i * frac
+            m = -np.inf
+            for j in range(x8.shape[0]):
+                sub_vals[j] = horner(r, k, t * (s0 + frac * x8[j])) + ln_w8[j]
+                m = max(m, sub_vals[j])
+            acc = 0.0
+            for j in range(x8.shape[0]):
+                acc += math.exp(sub_vals[j] - m)
+            sub_part[i] = math.log(acc) + m + ln_frac
+            top = max(top, sub_part[i])
+        if n_live == 1:
+            return top + math.log(t * h)
+        tot = 0.0
+        for i in range(n_sub):
+            if sub_part[i] > -np.inf:
+                tot += math.exp(sub_part[i] - top)
+        return top + math.log(tot) + math.log(t * h)
+
+    for r in range(n_rows):
+        for k in range(nb - 1):
+            a, h = brk[r, k], brk[r, k + 1] - brk[r, k]
+            top = -np.inf
+            low = np.inf
+            for j in range(n):
+                top = max(top, q[r, k * n + j])
+                low = min(low, q[r, k * n + j])
+            live[r, k] = q[r, k * n] > -np.inf
+            if top > -np.inf:
+                for i in range(n):
+                    c = 0.0
+                    for j in range(n):
+                        c += amat[i, j] * q[r, k * n + j]
+                    coef[r, k, i] = c
+                spread[k] = top - low
+                s = 0.0
+                for j in range(n):
+                    s += math.exp(q[r, k * n + j] - top) * wn[j]
+                crude[k] = math.log(h * s) + top if h > 0 else -np.inf
+                bound[k] = top + math.log(h) if h > 0 else -np.inf
+            else:
+                spread[k] = 0.0
+                crude[k] = -np.inf
+                bound[k] = math.log(h) if h > 0 else -np.inf
+        # ln C at each panel start: the crude Gauss sums decide which steep panels to refine
+        start = tail0[r]
+        log_c[r, 0] = start
+        for k in range(nb - 1):
+            panel = crude[k]
+            h = brk[r, k + 1] - brk[r, k]
+            if (panel > -np.inf and h > 0 and spread[k] > gentle
+                    and bound[k] > start - diluted):
+                panel = log_partial(r, k, 1.0, h, spread[k])
+            start = _logaddexp(start, crude[k])
+            log_c[r, k + 1] = _logaddexp(log_c[r, k], panel)
+            read_spread[r, k] = -1.0 if log_c[r, k] > bound[k] + diluted else spread[k]
+    out = np.empty(phi.shape[0])
+    prev_r, p = -1, 0
+    for i in range(phi.shape[0]):
+        r, p_i = row[i], phi[i]
+        if not p_i >= brk[r, 0]:
+            out[i] = np.nan
+            continue
+        if r != prev_r:
+            p, hi = 0, nb
+            while hi - p > 1:
+                mid = (p + hi) >> 1
+                if brk[r, mid] <= p_i:
+                    p = mid
+                else:
+                    hi = mid
+        else:
+            while p < nb - 1 and brk[r, p + 1] <= p_i:
+                p += 1
+            while brk[r, p] > p_i:
+                p -= 1
+        prev_r = r
+        if p >= nb - 1:
+            out[i] = log_c[r, nb - 1] - p_i
+            continue
+        a, h = brk[r, p], brk[r, p + 1] - brk[r, p]
+        t = min(max((p_i - a) / h, 0.0), 1.0) if h > 0 else 0.0
+        part = -np.inf
+        if t > 0 and live[r, p] and read_spread[r, p] >= 0.0:
+            part = log_partial(r, p, t, h, read_spread[r, p])
+        out[i] = _logaddexp(log_c[r, p], part) - p_i
+    return out

@@ -21,6 +21,7 @@ body whose limit sits below its detections).
 from __future__ import annotations
 
 import types
+from functools import lru_cache
 
 import numpy as np
 from scipy import special
@@ -163,6 +164,9 @@ def compile_kernels() -> None:
     one = np.zeros(1, int)
     _compiled_reads(np.array([1.0]), one, one, one, b,
                     _subset(b, var, stats, one) + (np.array([[True]]),), 5)
+    rules = limits_rules(5)     # the age tables' reads (agedspin.body_spin_table)
+    _kernel().table_reads(np.array([[0.0, 1.0]]), np.zeros((1, 5)), np.zeros(1),
+                          np.array([0.5]), np.zeros(1, np.int64), *rules[:9], rules[10])
 
 
 def _compiled_reads(phi, wi, gi, gx, b, args, n_nodes):
@@ -180,11 +184,13 @@ def _compiled_reads(phi, wi, gi, gx, b, args, n_nodes):
         *limits_rules(n_nodes))
 
 
+@lru_cache(maxsize=16)
 def limits_rules(n_nodes):
     """The compiled limits kernel's fixed inputs: the Y panels' Gauss–Legendre rule of
     ``n_nodes`` nodes and its monomial interpolation matrix, the reads' 3-, 6- and
     ``_SUB_NODES``-node rules, the Y grades and the conventions (inactive, skip above peak,
-    sub range, negligible, diluted, gentle), each a C-contiguous float array."""
+    sub range, negligible, diluted, gentle), each a C-contiguous float array (cached: do not
+    modify them)."""
     rules = [quad.gauss_legendre_unit(k) for k in (n_nodes, 3, 6, _SUB_NODES)]
     consts = np.array([_INACTIVE, _SKIP_ABOVE_PEAK, _SUB_RANGE, _NEGLIGIBLE, _DILUTED,
                        _GENTLE])
