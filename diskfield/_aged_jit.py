@@ -142,3 +142,132 @@ def measure_breaks(grid, lf, lp, inverse, sd, scale, hi, consts):
                     step = min(max(step, 0.0), 1.0)
                     out[w, g, r, j - 1] = g0 + step * (g1 - g0)
     return out
+
+
+@njit(cache=True)
+def lay_out_nodes(measure, lo, hi, kind, a, b, gl_x, gl_logw):
+    """The age nodes of every record, flat: ``aged._age_rule``'s layout in one pass.
+
+    Each record's breaks are its measure's (``measure`` (W, G, n, J)) with its support ends
+    ``lo``, ``hi`` (G, n) and t = 0 clipped to them, sorted; every panel of positive width
+    takes the Gauss–Legendre rule ``gl_x``, ``gl_logw`` (nodes on [0, 1], ln weights).
+
+    Returns
+    -------
+    t : (N,) float
+        Node times [Myr], ordered by walker, body, record, panel, node.
+    lw : (N,) float
+        ln(panel width x weight) + ln p(t) for normal (``kind`` 0: mean a, sd b) and uniform
+        (1: [a, b]) age priors; a window prior's (kind 2) ln p is left to the caller.
+    row, col : (N,) int
+        Flat (walker, body, record) index and the node's slot among the record's nodes.
+    n_q : int
+        Most nodes of any record.
+    """
+    n_w, n_g, n_r, n_j = measure.shape
+    n_n = gl_x.shape[0]
+    n_b = n_j + 3
+    brk = np.empty(n_b)
+    cap = n_w * n_g * n_r * (n_b - 1) * n_n
+    t = np.empty(cap)
+    lw = np.empty(cap)
+    row = np.empty(cap, np.int64)
+    col = np.empty(cap, np.int64)
+    pos = 0
+    n_q = 0
+    for w in range(n_w):
+        for g in range(n_g):
+            for r in range(n_r):
+                for j in range(n_j):
+                    brk[j] = measure[w, g, r, j]
+                l0, h0 = lo[g, r], hi[g, r]
+                brk[n_j], brk[n_j + 1] = l0, h0
+                brk[n_j + 2] = min(max(0.0, l0), h0)
+                for i in range(1, n_b):            # insertion sort: the measure's run is sorted
+                    x = brk[i]
+                    k = i - 1
+                    while k >= 0 and brk[k] > x:
+                        brk[k + 1] = brk[k]
+                        k -= 1
+                    brk[k + 1] = x
+                kd, pa, pb = kind[g, r], a[g, r], b[g, r]
+                if kd == 0:
+                    inv = 1.0 / pb if pb > 0 else 0.0       # padding records have no panels
+                    c0 = -math.log(pb) - _LN_SQRT_2PI if pb > 0 else -np.inf
+                elif kd == 1:
+                    c0 = -math.log(pb - pa) if pb > pa else -np.inf
+                    inv = 0.0
+                else:
+                    c0 = 0.0
+                    inv = 0.0
+                flat = (w * n_g + g) * n_r + r
+                slot = 0
+                for i in range(n_b - 1):
+                    h = brk[i + 1] - brk[i]
+                    if not h > 0:
+                        continue
+                    lh = math.log(h)
+                    for j in range(n_n):
+                        x = brk[i] + h * gl_x[j]
+                        t[pos] = x
+                        val = lh + gl_logw[j]
+                        if kd == 0:
+                            z = (x - pa) * inv
+                            val += -0.5 * z * z + c0
+                        elif kd == 1:
+                            val += c0
+                        lw[pos] = val
+                        row[pos] = flat
+                        col[pos] = slot
+                        slot += 1
+                        pos += 1
+                n_q = max(n_q, slot)
+    return t[:pos], lw[:pos], row[:pos], col[:pos], max(n_q, 1)
+
+
+@njit(cache=True)
+def finish_rule(lw, lf, row, col, n_rows, n_q):
+    """Each record's age weights normalised (ln sum = 0), mean and variance of ln T under them
+    and its extremes over the nodes of finite weight, and the padded (n_rows, n_q) arrays of
+    ln weights (-inf padding) and ln T (0 padding): ``aged._age_rule``'s end.
+
+    ``lw``, ``lf``, ``row``, ``col`` (N,) as from :func:`lay_out_nodes` (runs of equal row).
+    Returns logw, log_factor (n_rows, n_q) and mean, var, top, low (n_rows,).
+    """
+    logw = np.full((n_rows, n_q), -np.inf)
+    out_lf = np.zeros((n_rows, n_q))
+    mean = np.zeros(n_rows)
+    var = np.zeros(n_rows)
+    top_lf = np.full(n_rows, -np.inf)
+    low_lf = np.full(n_rows, np.inf)
+    n = lw.shape[0]
+    s = 0
+    while s < n:
+        e = s
+        rr = row[s]
+        while e < n and row[e] == rr:
+            e += 1
+        top = -np.inf
+        for i in range(s, e):
+            top = max(top, lw[i])
+        acc = 0.0
+        for i in range(s, e):
+            acc += math.exp(lw[i] - top)
+        norm = math.log(acc) + top
+        m = 0.0
+        for i in range(s, e):
+            v = lw[i] - norm
+            logw[rr, col[i]] = v
+            out_lf[rr, col[i]] = lf[i]
+            m += math.exp(v) * lf[i]
+        sq = 0.0
+        hi_v, lo_v = -np.inf, np.inf
+        for i in range(s, e):
+            d = lf[i] - m
+            sq += math.exp(lw[i] - norm) * d * d
+            if lw[i] - norm > -np.inf:
+                hi_v = max(hi_v, lf[i])
+                lo_v = min(lo_v, lf[i])
+        mean[rr], var[rr], top_lf[rr], low_lf[rr] = m, sq, hi_v, lo_v
+        s = e
+    return logw, out_lf, mean, var, top_lf, low_lf

@@ -28,6 +28,8 @@ class _AgeRule:
     logw: np.ndarray             # ln weights (W, G, n, Q), logsumexp over Q = 0
     mean_log_factor: np.ndarray  # (W, G, n)
     var_log_factor: np.ndarray   # (W, G, n)
+    top_log_factor: np.ndarray   # (W, G, n): highest ln T at a node of positive weight
+    low_log_factor: np.ndarray   # (W, G, n): lowest (-inf, inf for padding records)
 
 
 @dataclass(frozen=True)
@@ -178,6 +180,27 @@ def _age_rule(ages, envelope, p, s, var=None):
     else:
         measure = _measure_breaks(grid[:, inverse], lf[:, inverse], lp[:, inverse], sd, scale,
                                   hi)
+    env_p = {k: p[k] for k in envelope.parameter_names}
+    if kernel is not None:
+        x, wx = quad.gauss_legendre_unit(s.age_nodes)
+        t_flat, lw_flat, row, col, n_q = kernel.lay_out_nodes(
+            measure, lo, hi, ages.kind, ages.a, ages.b, x, np.log(wx))
+        per_walker = int(np.prod(shape[1:]))
+        wi = row // per_walker
+        for prior, mask in ages.window.values():
+            gr = (row % per_walker)
+            sel = np.flatnonzero(mask.ravel()[gr])
+            if len(sel):
+                lw_flat[sel] += prior.log_prob(t_flat[sel])
+        lf_flat = envelope.log_factor(t_flat[:, None], {k: v[wi][:, None]
+                                                        for k, v in env_p.items()})[:, 0]
+        logw, lf, mean, var_lf, top, low = kernel.finish_rule(
+            lw_flat, np.ascontiguousarray(lf_flat, dtype=float), row, col,
+            int(np.prod(shape)), n_q)
+        return _AgeRule(log_factor=lf.reshape(shape + (n_q,)),
+                        logw=logw.reshape(shape + (n_q,)), mean_log_factor=mean.reshape(shape),
+                        var_log_factor=var_lf.reshape(shape), top_log_factor=top.reshape(shape),
+                        low_log_factor=low.reshape(shape))
     breaks = np.concatenate([
         measure, np.broadcast_to(np.stack([lo, hi, np.clip(0.0, lo, hi)], axis=-1),
                                  shape + (3,))], axis=-1)
@@ -196,7 +219,7 @@ def _age_rule(ages, envelope, p, s, var=None):
     at = tuple(np.repeat(i, s.age_nodes) for i in (wi, gi, ri))
     lw_flat = (np.log(hk) + np.log(wx)).ravel() + _log_age_pdf_at(ages, t_flat, at[1], at[2])
     lf_flat = envelope.log_factor(t_flat[:, None], {k: v[at[0]][:, None]
-                                                    for k, v in p.items()})[:, 0]
+                                                    for k, v in env_p.items()})[:, 0]
     # per record (runs of equal (walker, body, record) in the flat order): normalise the
     # weights exactly, then the mean and variance of ln T
     row = np.ravel_multi_index(at, shape)
@@ -211,11 +234,16 @@ def _age_rule(ages, envelope, p, s, var=None):
     mean, var_lf = np.zeros(shape), np.zeros(shape)
     mean.ravel()[row[starts]] = mean_r
     var_lf.ravel()[row[starts]] = var_r
+    finite = np.isfinite(lw_flat)
+    top, low = np.full(shape, -np.inf), np.full(shape, np.inf)
+    top.ravel()[row[starts]] = np.maximum.reduceat(np.where(finite, lf_flat, -np.inf), starts)
+    low.ravel()[row[starts]] = np.minimum.reduceat(np.where(finite, lf_flat, np.inf), starts)
     logw = np.full(shape + (n_q,), -np.inf)
     lf = np.zeros(shape + (n_q,))
     logw[at + (col,)] = lw_flat
     lf[at + (col,)] = lf_flat
-    return _AgeRule(log_factor=lf, logw=logw, mean_log_factor=mean, var_log_factor=var_lf)
+    return _AgeRule(log_factor=lf, logw=logw, mean_log_factor=mean, var_log_factor=var_lf,
+                    top_log_factor=top, low_log_factor=low)
 
 
 def _time_grid(lo, hi, feats, w):
@@ -404,7 +432,7 @@ def _kernel():
 
 
 def compile_kernels() -> None:
-    """Compile (or load from numba's cache) the age sums and the age rule's measure now, in
+    """Compile (or load from numba's cache) the age sums and the age rule's kernels now, in
     the layout models pass."""
     kernel = _kernel()
     if kernel is None:
@@ -416,6 +444,11 @@ def compile_kernels() -> None:
     kernel.measure_breaks(grid, np.zeros((1, 1, 3)), np.zeros((1, 1, 3)),
                           np.zeros((1, 1), np.int64), np.ones((1, 1, 1)), np.ones((1, 1)),
                           np.ones((1, 1)), _MEASURE_CONSTANTS)
+    x, wx = quad.gauss_legendre_unit(2)
+    t, lw, row, col, n_q = kernel.lay_out_nodes(np.ones((1, 1, 1, 2)), np.zeros((1, 1)),
+                                                np.ones((1, 1)), np.ones((1, 1), int),
+                                                np.zeros((1, 1)), np.ones((1, 1)), x, np.log(wx))
+    kernel.finish_rule(lw, np.zeros(len(t)), row, col, 1, n_q)
 
 
 def _records_at(b, var, ages, g):
@@ -460,9 +493,9 @@ _PLATEAU_SPREAD = 2.0
 def log_factor_range(b, ages):
     """Highest and lowest ln T (W, G) at the age nodes of positive weight of a body's
     records (the spread that decides the plateau levels)."""
-    data = (b.det | b.lim)[None, ..., None] & np.isfinite(ages.logw)
-    lt_hi = np.max(np.where(data, ages.log_factor, -np.inf), axis=(-2, -1))
-    lt_lo = np.min(np.where(data, ages.log_factor, np.inf), axis=(-2, -1))
+    data = (b.det | b.lim)[None]
+    lt_hi = np.max(np.where(data, ages.top_log_factor, -np.inf), axis=-1)
+    lt_lo = np.min(np.where(data, ages.low_log_factor, np.inf), axis=-1)
     return lt_hi, lt_lo
 
 

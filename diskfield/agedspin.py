@@ -84,11 +84,8 @@ def body_spin_table(phi, first, b, var, ages, g, n_nodes, records):
         ln F at the distinct nodes (``-inf`` elsewhere).
     """
     data = b.det[g] | b.lim[g]
-    lw = ages.logw[:, g][:, data]                                  # (W, M, Q)
-    lf = ages.log_factor[:, g][:, data]
-    live = np.isfinite(lw)
-    lt_hi = np.max(np.where(live, lf, -np.inf), axis=-1)           # (W, M)
-    lt_lo = np.min(np.where(live, lf, np.inf), axis=-1)
+    lt_hi = ages.top_log_factor[:, g][:, data]                     # (W, M)
+    lt_lo = ages.low_log_factor[:, g][:, data]
     z = b.z[g, data]
     sd = np.sqrt(var[:, g][:, data])
     is_lim = b.lim[g, data]

@@ -143,7 +143,8 @@ def test_compile_kernels_compiles_the_age_sums_the_model_uses(demo_model):
     lk.compile_kernels()
     from diskfield import steady
 
-    before = {f: set(getattr(kernel, f).signatures) for f in ("records_sum", "measure_breaks")}
+    before = {f: set(getattr(kernel, f).signatures) for f in ("records_sum", "measure_breaks",
+                                                             "lay_out_nodes", "finish_rule")}
     tables = set(steady._kernel().table_reads.signatures)
     rng = np.random.default_rng(5)
     demo_model.log_likelihood(np.column_stack([p.sample(rng, 4) for p in demo_model.priors]))
@@ -151,12 +152,42 @@ def test_compile_kernels_compiles_the_age_sums_the_model_uses(demo_model):
     assert set(steady._kernel().table_reads.signatures) == tables
 
 
-@pytest.mark.parametrize("envelope", ["dissipating", "viscous"])
-def test_compiled_age_rule_equals_the_array_rule(envelope, monkeypatch):
-    """The age rule's measure compiled (_aged_jit.measure_breaks) and in array code
-    (aged._measure_breaks) place the same age panels: same nodes and weights to round-off
-    (common practice, no source: two implementations held equal)."""
+_NORMAL_WINDOWS = """
+[age_windows.NC]
+family = "truncated_normal"
+mean = 2.0
+sd = 1.5
+low = 0.0
+high = 6.0
+unit = "Myr"
+source = "test only"
+
+[age_windows.CC]
+family = "truncated_normal"
+mean = 3.0
+sd = 1.0
+low = 0.0
+high = 6.0
+unit = "Myr"
+source = "test only"
+"""
+
+
+@pytest.mark.parametrize("envelope,windows", [("dissipating", False), ("viscous", False),
+                                              ("dissipating", True)])
+def test_compiled_age_rule_equals_the_array_rule(envelope, windows, monkeypatch, tmp_path):
+    """The age rule compiled (_aged_jit.measure_breaks, lay_out_nodes, finish_rule) and in
+    array code (aged._measure_breaks and numpy) place the same age panels: same nodes,
+    weights and per-record summaries to round-off, also with non-uniform age windows for the
+    records without ages (common practice, no source: two implementations held equal)."""
     model = _demo_model("two-ring", envelope)
+    if windows:
+        path = tmp_path / "windows.toml"
+        path.write_text(_NORMAL_WINDOWS)
+        comp = read_compilation(demo_dir() / "demo_compilation.ecsv")
+        model = build_model(comp, "two-ring", envelope=envelope, spin="body",
+                            priors=load_priors([path]))
+        assert np.any(model._ages.kind == 2)
     rng = np.random.default_rng(9)
     theta = np.column_stack([p.sample(rng, 32) for p in model.priors])
     p = model.params(theta[model._in_support(theta)])
@@ -168,6 +199,9 @@ def test_compiled_age_rule_equals_the_array_rule(envelope, monkeypatch):
     np.testing.assert_allclose(compiled.log_factor[live], array.log_factor[live], rtol=1e-12,
                                atol=1e-12)
     np.testing.assert_allclose(compiled.logw[live], array.logw[live], rtol=1e-12, atol=1e-12)
+    for name in ("mean_log_factor", "var_log_factor", "top_log_factor", "low_log_factor"):
+        np.testing.assert_allclose(getattr(compiled, name), getattr(array, name), rtol=1e-11,
+                                   atol=1e-12, err_msg=name)
 
 
 @pytest.mark.parametrize("envelope", ["dissipating", "viscous"])
