@@ -25,7 +25,7 @@ _LINEAR_FLOOR = 1e-280
 
 
 @njit(cache=True, fastmath={"reassoc", "contract"})
-def records_sum(y, wi, z, var, is_lim, lf, lw, n_q):
+def records_sum(y, wi, z, var, is_lim, lf, lw, start, n_q):
     """Sum over records of ln sum_q w_q p(record | y + ln T_q), (P,).
 
     Parameters
@@ -36,10 +36,10 @@ def records_sum(y, wi, z, var, is_lim, lf, lw, n_q):
         The body's records (corrected ln values) and which are upper limits.
     var : (W, M) float
         Total log variances.
-    lf, lw : (W, M, Q) float
-        ln T and ln weights at the age nodes, nodes of positive weight first.
-    n_q : (W, M) int
-        Age nodes of positive weight.
+    lf, lw : (N,) float
+        ln T and ln weights at the age nodes, flat (``aged._AgeRule``).
+    start, n_q : (W, M) int
+        Where each (walker, record)'s nodes start in ``lf``, ``lw`` and how many there are.
     """
     n_p = y.shape[0]
     n_m = z.shape[0]
@@ -49,44 +49,47 @@ def records_sum(y, wi, z, var, is_lim, lf, lw, n_q):
         acc = 0.0
         for j in range(n_m):
             v = var[w, j]
-            n = n_q[w, j]
+            # unsigned offsets: numba then adds no negative-index wraparound, and the
+            # loops over q vectorise
+            n = np.uint64(n_q[w, j])
+            o = np.uint64(start[w, j])
             tot = 0.0
             if is_lim[j]:
                 s = -1.0 / math.sqrt(v)
                 for q in range(n):
-                    tot += exp_ftz(lw[w, j, q] + log_ndtr_ftz((y[p] + lf[w, j, q] - z[j]) * s))
+                    tot += exp_ftz(lw[o + q] + log_ndtr_ftz((y[p] + lf[o + q] - z[j]) * s))
                 if tot >= _LINEAR_FLOOR:
                     acc += math.log(tot)
                     continue
                 sd = math.sqrt(v)
                 top = -np.inf
                 for q in range(n):
-                    top = max(top, lw[w, j, q] + log_ndtr((z[j] - y[p] - lf[w, j, q]) / sd))
+                    top = max(top, lw[o + q] + log_ndtr((z[j] - y[p] - lf[o + q]) / sd))
                 if top == -np.inf:
                     acc += top
                     continue
                 tot = 0.0
                 for q in range(n):
-                    tot += exp_ftz(lw[w, j, q] + log_ndtr((z[j] - y[p] - lf[w, j, q]) / sd)
+                    tot += exp_ftz(lw[o + q] + log_ndtr((z[j] - y[p] - lf[o + q]) / sd)
                                     - top)
                 acc += math.log(tot) + top
                 continue
             c = -0.5 / v
             for q in range(n):
-                d = y[p] + lf[w, j, q] - z[j]
-                tot += exp_ftz(c * d * d + lw[w, j, q])
+                d = y[p] + lf[o + q] - z[j]
+                tot += exp_ftz(c * d * d + lw[o + q])
             norm = -0.5 * math.log(v) - _LN_SQRT_2PI
             if tot >= _LINEAR_FLOOR:
                 acc += math.log(tot) + norm
                 continue
             top = -np.inf
             for q in range(n):
-                d = y[p] + lf[w, j, q] - z[j]
-                top = max(top, c * d * d + lw[w, j, q])
+                d = y[p] + lf[o + q] - z[j]
+                top = max(top, c * d * d + lw[o + q])
             tot = 0.0
             for q in range(n):
-                d = y[p] + lf[w, j, q] - z[j]
-                tot += exp_ftz(c * d * d + lw[w, j, q] - top)
+                d = y[p] + lf[o + q] - z[j]
+                tot += exp_ftz(c * d * d + lw[o + q] - top)
             acc += math.log(tot) + top + norm
         out[p] = acc
     return out
@@ -226,16 +229,12 @@ def lay_out_nodes(measure, lo, hi, kind, a, b, gl_x, gl_logw):
 
 
 @njit(cache=True)
-def finish_rule(lw, lf, row, col, n_rows, n_q):
-    """Each record's age weights normalised (ln sum = 0), mean and variance of ln T under them
-    and its extremes over the nodes of finite weight, and the padded (n_rows, n_q) arrays of
-    ln weights (-inf padding) and ln T (0 padding): ``aged._age_rule``'s end.
-
-    ``lw``, ``lf``, ``row``, ``col`` (N,) as from :func:`lay_out_nodes` (runs of equal row).
-    Returns logw, log_factor (n_rows, n_q) and mean, var, top, low (n_rows,).
+def finish_rule(lw, lf, row, n_rows):
+    """Each record's age weights normalised in place (ln sum = 0), and the mean and variance
+    of ln T under them and its extremes over the nodes of finite weight (n_rows,) each:
+    ``aged._age_rule``'s end. ``lw``, ``lf``, ``row`` (N,) as from :func:`lay_out_nodes`
+    (runs of equal row); rows without nodes get 0, 0, -inf, inf.
     """
-    logw = np.full((n_rows, n_q), -np.inf)
-    out_lf = np.zeros((n_rows, n_q))
     mean = np.zeros(n_rows)
     var = np.zeros(n_rows)
     top_lf = np.full(n_rows, -np.inf)
@@ -256,18 +255,16 @@ def finish_rule(lw, lf, row, col, n_rows, n_q):
         norm = math.log(acc) + top
         m = 0.0
         for i in range(s, e):
-            v = lw[i] - norm
-            logw[rr, col[i]] = v
-            out_lf[rr, col[i]] = lf[i]
-            m += math.exp(v) * lf[i]
+            lw[i] -= norm
+            m += math.exp(lw[i]) * lf[i]
         sq = 0.0
         hi_v, lo_v = -np.inf, np.inf
         for i in range(s, e):
             d = lf[i] - m
-            sq += math.exp(lw[i] - norm) * d * d
-            if lw[i] - norm > -np.inf:
+            sq += math.exp(lw[i]) * d * d
+            if lw[i] > -np.inf:
                 hi_v = max(hi_v, lf[i])
                 lo_v = min(lo_v, lf[i])
         mean[rr], var[rr], top_lf[rr], low_lf[rr] = m, sq, hi_v, lo_v
         s = e
-    return logw, out_lf, mean, var, top_lf, low_lf
+    return mean, var, top_lf, low_lf

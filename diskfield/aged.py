@@ -20,16 +20,49 @@ from .priorspec import Uniform
 from .recording import LN_SQRT_2PI, emg_logpdf, emg_logsf
 
 
-@dataclass(frozen=True)
 class _AgeRule:
-    """Age nodes per record: t (W, G, n, Q) [Myr] and ln weights; summaries per record."""
+    """Age nodes per record and summaries per record.
 
-    log_factor: np.ndarray       # ln T(t) at the nodes (W, G, n, Q)
-    logw: np.ndarray             # ln weights (W, G, n, Q), logsumexp over Q = 0
-    mean_log_factor: np.ndarray  # (W, G, n)
-    var_log_factor: np.ndarray   # (W, G, n)
-    top_log_factor: np.ndarray   # (W, G, n): highest ln T at a node of positive weight
-    low_log_factor: np.ndarray   # (W, G, n): lowest (-inf, inf for padding records)
+    The nodes are kept flat, ordered by walker, body, record (``row``, the flat index into
+    (W, G, n)) and node (``col``): ln T (``flat_lf``) and ln weights (``flat_lw``,
+    logsumexp over a record's nodes = 0); record (w, g, j) holds ``count[w, g, j]`` nodes
+    from ``start[w, g, j]``. Records take from a few nodes to hundreds (a sharp drop of the
+    field inside their window), so the padded (W, G, n, Q) arrays ``log_factor`` and
+    ``logw`` (-inf weight in the padding) are built only when first read.
+    """
+
+    def __init__(self, flat_lf, flat_lw, row, col, shape, n_q, mean_log_factor,
+                 var_log_factor, top_log_factor, low_log_factor):
+        self.flat_lf, self.flat_lw, self.row, self.col = flat_lf, flat_lw, row, col
+        self.shape, self.n_q = shape, n_q
+        self.mean_log_factor = mean_log_factor   # (W, G, n)
+        self.var_log_factor = var_log_factor     # (W, G, n)
+        self.top_log_factor = top_log_factor     # (W, G, n): highest ln T at a node of
+        self.low_log_factor = low_log_factor     # positive weight, lowest (-inf, inf: none)
+        count = np.bincount(row, minlength=int(np.prod(shape)))
+        self.count = count.reshape(shape)
+        self.start = (np.cumsum(count) - count).reshape(shape)
+        self._padded = None
+
+    def _pad(self):
+        if self._padded is None:
+            logw = np.full((int(np.prod(self.shape)), self.n_q), -np.inf)
+            lf = np.zeros(logw.shape)
+            logw[self.row, self.col] = self.flat_lw
+            lf[self.row, self.col] = self.flat_lf
+            self._padded = (lf.reshape(self.shape + (self.n_q,)),
+                            logw.reshape(self.shape + (self.n_q,)))
+        return self._padded
+
+    @property
+    def log_factor(self):
+        """ln T(t) at the nodes (W, G, n, Q), 0 in the padding."""
+        return self._pad()[0]
+
+    @property
+    def logw(self):
+        """ln weights (W, G, n, Q), -inf in the padding."""
+        return self._pad()[1]
 
 
 @dataclass(frozen=True)
@@ -194,13 +227,10 @@ def _age_rule(ages, envelope, p, s, var=None):
                 lw_flat[sel] += prior.log_prob(t_flat[sel])
         lf_flat = envelope.log_factor(t_flat[:, None], {k: v[wi][:, None]
                                                         for k, v in env_p.items()})[:, 0]
-        logw, lf, mean, var_lf, top, low = kernel.finish_rule(
-            lw_flat, np.ascontiguousarray(lf_flat, dtype=float), row, col,
-            int(np.prod(shape)), n_q)
-        return _AgeRule(log_factor=lf.reshape(shape + (n_q,)),
-                        logw=logw.reshape(shape + (n_q,)), mean_log_factor=mean.reshape(shape),
-                        var_log_factor=var_lf.reshape(shape), top_log_factor=top.reshape(shape),
-                        low_log_factor=low.reshape(shape))
+        lf_flat = np.ascontiguousarray(lf_flat, dtype=float)
+        mean, var_lf, top, low = kernel.finish_rule(lw_flat, lf_flat, row, int(np.prod(shape)))
+        return _AgeRule(lf_flat, lw_flat, row, col, shape, n_q, mean.reshape(shape),
+                        var_lf.reshape(shape), top.reshape(shape), low.reshape(shape))
     breaks = np.concatenate([
         measure, np.broadcast_to(np.stack([lo, hi, np.clip(0.0, lo, hi)], axis=-1),
                                  shape + (3,))], axis=-1)
@@ -238,12 +268,7 @@ def _age_rule(ages, envelope, p, s, var=None):
     top, low = np.full(shape, -np.inf), np.full(shape, np.inf)
     top.ravel()[row[starts]] = np.maximum.reduceat(np.where(finite, lf_flat, -np.inf), starts)
     low.ravel()[row[starts]] = np.minimum.reduceat(np.where(finite, lf_flat, np.inf), starts)
-    logw = np.full(shape + (n_q,), -np.inf)
-    lf = np.zeros(shape + (n_q,))
-    logw[at + (col,)] = lw_flat
-    lf[at + (col,)] = lf_flat
-    return _AgeRule(log_factor=lf, logw=logw, mean_log_factor=mean, var_log_factor=var_lf,
-                    top_log_factor=top, low_log_factor=low)
+    return _AgeRule(lf_flat, lw_flat, row, col, shape, n_q, mean, var_lf, top, low)
 
 
 def _time_grid(lo, hi, feats, w):
@@ -354,12 +379,13 @@ def _records_flat(phi, b, var, ages, spin, bodies=None):
     each, and summed per record by ``reduceat``, in chunks of whole records.
     """
     w, g, k = phi.shape
-    keep = np.isfinite(ages.logw) & (b.det | b.lim)[None, ..., None]
+    data = b.det | b.lim
     if bodies is not None:
-        keep &= bodies[None, :, None, None]
-    wi, gi, ri, _ = np.nonzero(keep)
-    lw, lf = ages.logw[keep], ages.log_factor[keep]
-    rec = (wi * g + gi) * b.z.shape[1] + ri
+        data = data & bodies[:, None]
+    keep = np.broadcast_to(data[None], ages.shape).ravel()[ages.row] & np.isfinite(ages.flat_lw)
+    rec = ages.row[keep]
+    wi, gi, ri = np.unravel_index(rec, ages.shape)
+    lw, lf = ages.flat_lw[keep], ages.flat_lf[keep]
     starts = np.flatnonzero(np.r_[True, rec[1:] != rec[:-1]])
     ends = np.r_[starts[1:], len(rec)]
     out = np.zeros(phi.shape)
@@ -439,7 +465,8 @@ def compile_kernels() -> None:
         return
     one = np.zeros(1, np.int64)
     kernel.records_sum(np.zeros(1), one, np.zeros(1), np.ones((1, 1)), np.zeros(1, bool),
-                       np.zeros((1, 1, 1)), np.zeros((1, 1, 1)), np.ones((1, 1), np.int64))
+                       np.zeros(1), np.zeros(1), np.zeros((1, 1), np.int64),
+                       np.ones((1, 1), np.int64))
     grid = np.linspace(0.0, 1.0, 3)[None, None]
     kernel.measure_breaks(grid, np.zeros((1, 1, 3)), np.zeros((1, 1, 3)),
                           np.zeros((1, 1), np.int64), np.ones((1, 1, 1)), np.ones((1, 1)),
@@ -448,7 +475,7 @@ def compile_kernels() -> None:
     t, lw, row, col, n_q = kernel.lay_out_nodes(np.ones((1, 1, 1, 2)), np.zeros((1, 1)),
                                                 np.ones((1, 1)), np.ones((1, 1), int),
                                                 np.zeros((1, 1)), np.ones((1, 1)), x, np.log(wx))
-    kernel.finish_rule(lw, np.zeros(len(t)), row, col, 1, n_q)
+    kernel.finish_rule(lw, np.zeros(len(t)), row, 1)
 
 
 def _records_at(b, var, ages, g):
@@ -457,12 +484,9 @@ def _records_at(b, var, ages, g):
     kernel = _kernel()
     if kernel is not None:
         data = np.flatnonzero(b.det[g] | b.lim[g])
-        live = np.isfinite(ages.logw[:, g, data])                    # (W, M, Q), live first
-        n_q = live.sum(axis=-1)
-        q_max = max(int(n_q.max()), 1)
         args = (b.z[g, data], np.ascontiguousarray(var[:, g, data]), b.lim[g, data],
-                np.ascontiguousarray(ages.log_factor[:, g, data, :q_max]),
-                np.ascontiguousarray(ages.logw[:, g, data, :q_max]), np.ascontiguousarray(n_q))
+                ages.flat_lf, ages.flat_lw, np.ascontiguousarray(ages.start[:, g, data]),
+                np.ascontiguousarray(ages.count[:, g, data]))
         # C-contiguous arguments throughout: the layout compile_kernels compiled
         return lambda y, wi: kernel.records_sum(np.ascontiguousarray(y, float),
                                                 np.ascontiguousarray(wi, np.int64), *args)
