@@ -21,7 +21,8 @@ import math
 import numpy as np
 from numba import njit
 
-from ._special_jit import log1p, log_ndtr
+from ._special_jit import _X0 as _TABLE_LOW
+from ._special_jit import exp_ftz, log1p, log_ndtr, log_ndtr_ftz, log_vec
 
 
 #: ln(1e-17): a ring factor 1 + x with |x| below 1e-17 leaves ln R unchanged to double
@@ -69,6 +70,32 @@ def log_field(r, c, n_rings, has_break, min_factor):
         # ln(1 + x) = x - x^2/2 + ...: x itself to double precision below 1e-17
         val += a_g if abs(a_g) < 1e-17 else log1p(a_g)
     return val
+
+
+@njit(cache=True, error_model="numpy")
+def _field_nodes(x, out, n_x, c, n_rings, has_break, min_factor):
+    """ln R at ``x[:n_x]`` into ``out[:n_x]``: :func:`log_field` in passes over the nodes
+    (the power law, then each ring) that the compiler vectorises; the same values to ~1e-16
+    (a ring's factor is taken for every node, not only where it exceeds 1e-17)."""
+    if has_break:
+        lrb = c[14]
+        for k in range(n_x):
+            lr = log_vec(x[k])
+            out[k] = c[0] - c[1] * min(lr, lrb) - c[3] * max(lr - lrb, 0.0)
+    else:
+        for k in range(n_x):
+            out[k] = c[0] - c[1] * log_vec(x[k])
+    floor = min_factor - 1.0
+    for i in range(n_rings):
+        amp, r0, inv = c[4 + 3 * i], c[5 + 3 * i], c[10 + i]
+        if amp == 0.0:
+            continue
+        for k in range(n_x):
+            z = (x[k] - r0) * inv
+            a = max(amp * exp_ftz(-0.5 * z * z), floor)
+            # ln(1 + a): its series below |a| = 1e-4 (as log1p), else ln of 1 + a
+            series = a * (1.0 - a * (0.5 - a * (1.0 / 3.0 - a * 0.25)))
+            out[k] += series if abs(a) < 1e-4 else log_vec(1.0 + a)
 
 
 @njit(cache=True)
@@ -204,7 +231,7 @@ def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, bas
     return r, lw, phi, wi, gi
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixed, ring_u,
           offsets, grades, gl_x, gl_logw, max_count, fused, closed, prior, zbar, v, ln_k):
     """The distance rule, one pass per (walker, body); with ``fused`` the closed bodies'
@@ -279,6 +306,9 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
     found = np.empty(max_count, np.bool_)
     ll = np.zeros((n_w, n_g))
     terms = np.empty((n_brk - 1) * n)
+    xs = np.empty((n_brk - 1) * n)
+    lws = np.empty((n_brk - 1) * n)
+    phs = np.empty((n_brk - 1) * n)
     pos = 0
     for w in range(n_w):
         c = _coefficients(form, w)
@@ -392,15 +422,8 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
                 brk[m] = a_hi
                 m += 1
             _insertion_sort(brk, m)
-            # Gauss–Legendre nodes of the panels of positive width
-            here = fused and closed[g] == 1
-            if fused:
-                p_c, p_k, p_mu, p_s = prior[g, 0], prior[g, 1], prior[g, 2], prior[g, 3]
-            if here:
-                zb, vv, lk = zbar[w, g], v[w, g], ln_k[w, g]
-                lk += 0.5 * vv            # the EMG's V / 2
-                zb += vv                  # its argument (d - V) / sqrt V, with d = ph - zbar
-                isd = 1.0 / math.sqrt(vv)
+            # Gauss–Legendre nodes of the panels of positive width, in passes over the body's
+            # nodes that the compiler vectorises (ln x, ln R, the prior, the EMG)
             k_t = 0
             for i in range(m - 1):
                 h = brk[i + 1] - brk[i]
@@ -408,35 +431,49 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
                     continue
                 lh = math.log(h)
                 for j in range(n):
-                    x = brk[i] + h * gl_x[j]
-                    lw = lh + gl_logw[j]
-                    ph = log_field(x, c, n_rings, has_break, min_factor)
-                    if fused:
-                        dx = (x - p_mu) * p_s
-                        lw += p_c - 0.5 * dx * dx
-                        if p_k != 0.0:
-                            lw -= p_k * math.log(x)
-                    if here:
-                        # K EMG(ph - zbar; V) = ln K - (ph - zbar) + V/2 + ln Phi((ph - zbar
-                        # - V) / sqrt V) (recording.emg_logpdf)
-                        terms[k_t] = lw + lk - (ph - zb + vv) + log_ndtr((ph - zb) * isd)
-                        k_t += 1
-                        continue
-                    r_out[pos] = x
-                    lw_out[pos] = lw
-                    phi_out[pos] = ph
+                    xs[k_t] = brk[i] + h * gl_x[j]
+                    lws[k_t] = lh + gl_logw[j]
+                    k_t += 1
+            _field_nodes(xs, phs, k_t, c, n_rings, has_break, min_factor)
+            if fused:
+                p_c, p_k, p_mu, p_s = prior[g, 0], prior[g, 1], prior[g, 2], prior[g, 3]
+                for k in range(k_t):
+                    dx = (xs[k] - p_mu) * p_s
+                    lws[k] += p_c - 0.5 * dx * dx - p_k * log_vec(xs[k])
+            if not (fused and closed[g] == 1):
+                for k in range(k_t):
+                    r_out[pos] = xs[k]
+                    lw_out[pos] = lws[k]
+                    phi_out[pos] = phs[k]
                     wi_out[pos] = w
                     gi_out[pos] = g
                     pos += 1
-            if here:
-                top = -np.inf
+                continue
+            # K EMG(ph - zbar; V) = ln K - (ph - zbar) + V/2 + ln Phi((ph - zbar - V) / sqrt V)
+            # (recording.emg_logpdf); ln Phi from the table, its far lower tail (x < -40,
+            # rare) again through the asymptotic series
+            zb, vv, lk = zbar[w, g], v[w, g], ln_k[w, g]
+            lk += 0.5 * vv            # the EMG's V / 2
+            zb += vv                  # its argument (d - V) / sqrt V, with d = ph - zbar
+            isd = 1.0 / math.sqrt(vv)
+            low = np.inf
+            for k in range(k_t):
+                arg = (phs[k] - zb) * isd
+                low = min(low, arg)
+                terms[k] = lws[k] + lk - (phs[k] - zb + vv) + log_ndtr_ftz(arg)
+            if low < _TABLE_LOW:
                 for k in range(k_t):
-                    top = max(top, terms[k])
-                if top == -np.inf or top == np.inf:
-                    ll[w, g] = top
-                    continue
-                acc = 0.0
-                for k in range(k_t):
-                    acc += math.exp(terms[k] - top)
-                ll[w, g] = top + math.log(acc)
+                    arg = (phs[k] - zb) * isd
+                    if arg < _TABLE_LOW:
+                        terms[k] = lws[k] + lk - (phs[k] - zb + vv) + log_ndtr(arg)
+            top = -np.inf
+            for k in range(k_t):
+                top = max(top, terms[k])
+            if top == -np.inf or top == np.inf:
+                ll[w, g] = top
+                continue
+            acc = 0.0
+            for k in range(k_t):
+                acc += exp_ftz(terms[k] - top)
+            ll[w, g] = top + math.log(acc)
     return r_out[:pos], lw_out[:pos], phi_out[:pos], wi_out[:pos], gi_out[:pos], ll

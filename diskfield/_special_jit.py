@@ -1,15 +1,18 @@
-"""Special functions for the compiled kernels: ln Phi, ln(1 + x), and exp inlined.
+"""Special functions for the compiled kernels: ln Phi, ln(1 + x), and exp and ln inlined.
 
-The kernels spend their time in three functions. ``log_ndtr`` and ``log1p`` are below;
+The kernels spend their time in a few functions. ``log_ndtr`` and ``log1p`` are below;
 ``exp_ftz`` is exp written out (Cody & Waite reduction x = k ln 2 + r, |r| <= ln 2 / 2, the
 Taylor series of e^r to degree 12, 2^k built in the exponent bits; common practice, no
 source): 4e-16 relative, flushed to 0 below e^-708 where the kernels' sums treat values as
-underflowed anyway. Inlined into a loop without a call, the compiler can vectorise it:
-~1 ns per element against ~7 ns for the C library's ``exp`` here
-(``benchmarks/bench_likelihood.py`` (f)). It is used where that happens, in the record sums of
-the time-dependent kernel (:mod:`diskfield._aged_jit`, 93 -> 61 ms of a ~150 ms call); in the
-steady kernels, whose exps sit in short loops with branches, it measured no faster, and the C
-library's ``exp`` stays there.
+underflowed anyway. ``log_vec`` is ln written out (fdlibm's reduction to [sqrt(2)/2, sqrt(2))
+and minimax polynomial, within 1 ulp). Inlined into a loop without a call (and, for
+``log_vec``'s division, compiled with ``error_model="numpy"``, so there is no
+division-by-zero test), the compiler vectorises them: ~2 and ~1.5 ns per element against ~5
+and ~3.7 ns for the C library's ``exp`` and ``log`` here (``benchmarks/bench_likelihood.py``
+(f)). They are used where that happens: the record sums of the time-dependent kernel
+(:mod:`diskfield._aged_jit`, 93 -> 61 ms of a ~150 ms call) and the passes over a body's
+distance nodes in :mod:`diskfield._rule_jit` (5-14 % of a steady call); elsewhere the C
+library's functions stay.
 
 ln Phi(x) (Phi the standard normal CDF) is the one special function of every compiled
 likelihood kernel: a limit's censoring term, the exponentially modified Gaussian of a body's
@@ -113,6 +116,65 @@ def _bits_as_float(typingctx, bits):
         return builder.bitcast(args[0], context.get_value_type(types.float64))
 
     return sig, codegen
+
+
+@intrinsic
+def _float_bits(typingctx, x):
+    """The uint64 whose bits are the float64 ``x``'s IEEE bits (a bit cast; unsigned, so
+    shifts are logical: AVX2 has no 64-bit arithmetic shift to vectorise a signed one)."""
+    sig = types.uint64(types.float64)
+
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], context.get_value_type(types.int64))
+
+    return sig, codegen
+
+
+@intrinsic
+def _ubits_as_float(typingctx, bits):
+    """The float64 whose IEEE bits are the uint64 ``bits`` (a bit cast)."""
+    sig = types.float64(types.uint64)
+
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], context.get_value_type(types.float64))
+
+    return sig, codegen
+
+
+#: fdlibm's e_log.c minimax coefficients of (ln(1 + f) - f + f^2/2) in s = f / (2 + f)
+#: (Sun Microsystems 1993; error below 1 ulp).
+_LG1, _LG2, _LG3 = 6.666666666666735130e-01, 3.999999999940941908e-01, 2.857142874366239149e-01
+_LG4, _LG5 = 2.222219843214978396e-01, 1.818357216161805012e-01
+_LG6, _LG7 = 1.531383769920937332e-01, 1.479819860511658591e-01
+_SQRT2 = 1.4142135623730951
+
+
+@njit(cache=True, inline="always")
+def log_vec(x):
+    """ln x for a positive normal x (>= 2.2e-308), within 1 ulp of the C library's ``log``
+    (fdlibm's reduction and polynomial, written out); inf for inf, -inf for 0, NaN for
+    negative x and NaN; subnormal x are not supported (their result is wrong). Selects only,
+    so a loop over it can vectorise (``benchmarks/bench_likelihood.py`` (f))."""
+    bits = _float_bits(x)
+    m = _ubits_as_float((bits & np.uint64(0x000FFFFFFFFFFFFF))
+                        | np.uint64(0x3FF0000000000000))                    # in [1, 2)
+    # the biased exponent as a float through 2^52's mantissa (AVX2 has no int64 -> float)
+    e = _ubits_as_float((bits >> np.uint64(52)) | np.uint64(0x4330000000000000)) \
+        - 4503599627370496.0
+    big = m > _SQRT2
+    m = m * 0.5 if big else m
+    dk = (e - 1022.0) if big else (e - 1023.0)
+    f = m - 1.0
+    hfsq = 0.5 * f * f
+    s = f / (2.0 + f)
+    z = s * s
+    w = z * z
+    t1 = w * (_LG2 + w * (_LG4 + w * _LG6))
+    t2 = z * (_LG1 + w * (_LG3 + w * (_LG5 + w * _LG7)))
+    v = dk * _LN2_HI - ((hfsq - (s * (hfsq + t2 + t1) + dk * _LN2_LO)) - f)
+    v = v if x < np.inf else np.inf
+    v = v if x > 0.0 else (-np.inf if x == 0.0 else np.nan)
+    return v if x == x else x
 
 
 _LOG2E = 1.4426950408889634
