@@ -332,8 +332,7 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
         for i in range(n_scout):
             scout[i] = _clip(scout[i], r_min, r_max)
         _insertion_sort(scout, n_scout)
-        for i in range(n_scout):
-            phi_s[i] = log_field(scout[i], c, n_rings, has_break, min_factor)
+        _field_nodes(scout, phi_s, n_scout, c, n_rings, has_break, min_factor)
         # runs of the scout grid over which ln R is monotone (ties continue a run): a level
         # crosses each at most once, so a body's crossings are found by bisection per run
         n_runs = _monotone_runs(phi_s, runs)
