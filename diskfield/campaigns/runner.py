@@ -124,8 +124,11 @@ def open_client(scheduler: str | None = None, workers: int | None = None):
             yield client
         return
     n = int(workers) if workers else (os.cpu_count() or 1)
+    # no dashboard; the scheduler's own HTTP routes on a free port (by default they take 8787,
+    # and a second local cluster, e.g. two campaigns at once, warned that it was taken)
     with LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
-                      dashboard_address=None, env=dict(SINGLE_THREAD_ENV)) as cluster, \
+                      dashboard_address=None, scheduler_kwargs={"dashboard_address": ":0"},
+                      env=dict(SINGLE_THREAD_ENV)) as cluster, \
             Client(cluster) as client:
         yield client
 
