@@ -80,10 +80,11 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
     """ln F(phi) at flat reads ``phi`` (N,) of rows ``row`` (N,); per-row data (R, ...).
 
     ``consts`` = (inactive, skip_above_peak, sub_range, negligible, diluted, gentle): the
-    numerical conventions of :mod:`diskfield.steady`.
+    numerical conventions of :mod:`diskfield.steady`. The Y panels and q on them are built
+    here; the cumulative table and its reads are :func:`table_reads` (which the age tables of
+    :mod:`diskfield.agedspin` share).
     """
-    inactive, skip_peak, sub_range, negligible, diluted, gentle = (
-        consts[0], consts[1], consts[2], consts[3], consts[4], consts[5])
+    inactive, skip_peak = consts[0], consts[1]
     n_rows, n_l = zl.shape
     n = xn.shape[0]
     top_phi = np.full(n_rows, -np.inf)
@@ -106,28 +107,16 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
             det[r, 4] = 0.5 * math.log(v[r])
             det[r, 5] = math.sqrt(v[r])
         det[r, 1], det[r, 2], det[r, 3] = zbar[r], v[r], ln_k[r]
-    ln_w8 = np.empty(x8.shape[0])
-    for j in range(x8.shape[0]):
-        ln_w8[j] = math.log(w8[j])
     nb = grades.shape[0] * (n_l + 1) + 2
     brk = np.empty((n_rows, nb))
-    # per panel: q's interpolant (monomial coefficients), whether its first node is finite
-    # (the array code's test), and the spread a read uses (-1 where C hardly changes)
-    coef = np.empty((n_rows, nb - 1, n))
-    live = np.zeros((n_rows, nb - 1), np.bool_)
-    read_spread = np.zeros((n_rows, nb - 1))
-    log_c = np.empty((n_rows, nb))
-    crude = np.empty(nb - 1)
-    spread = np.empty(nb - 1)
-    bound = np.empty(nb - 1)
-    qv = np.empty(n)
-    sub_hi = np.empty(32)
-    sub_part = np.empty(32)
-    sub_vals = np.empty(x8.shape[0])
+    # q = Y + ln h(Y) at the nodes of the panels needed (-inf elsewhere), ln C at each row's
+    # start; the table and its reads are table_reads'
+    q = np.full((n_rows, (nb - 1) * n), -np.inf)
+    tail0 = np.empty(n_rows)
 
-    # The helpers are inner functions: numba inlines them, and the arrays they read stay this
-    # function's own. A compiled function taking arrays pays an atomic reference increment
-    # and decrement per array per call, which was half the kernel's time.
+    # An inner function: numba inlines it, and the arrays it reads stay this function's own.
+    # A compiled function taking arrays pays an atomic reference increment and decrement per
+    # array per call, which was half the kernel's time.
     def log_h(y, r, tail):
         """ln h(Y) of row ``r`` (see ``steady._log_h``); with ``tail`` the EMG replaces the
         detections' Gaussian (ln F below the table, ``y`` is then phi)."""
@@ -142,59 +131,6 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
             out += log_ndtr((lz[r, j] - y) / lsd[r, j])
         return out
 
-    def horner(r, k, x):
-        acc = coef[r, k, n - 1] * x + coef[r, k, n - 2]
-        for j in range(n - 3, -1, -1):
-            acc = acc * x + coef[r, k, j]
-        return acc
-
-    def log_partial(r, k, t, h, spread):
-        """ln int_0^t h exp(q~(s)) ds for panel ``k`` of row ``r`` (see
-        ``steady._log_partial``), q~ from its monomial coefficients."""
-        need = spread * t
-        if need <= 6.0:
-            shift = coef[r, k, 0]
-            s = 0.0
-            if need <= 1.5:
-                for j in range(x3.shape[0]):
-                    s += math.exp(horner(r, k, t * x3[j]) - shift) * w3[j]
-            else:
-                for j in range(x6.shape[0]):
-                    s += math.exp(horner(r, k, t * x6[j]) - shift) * w6[j]
-            return math.log(s * (t * h)) + shift
-        n_sub = min(int(math.ceil(need / sub_range)), 32)
-        frac = 1.0 / n_sub
-        ln_frac = math.log(frac)
-        best = -np.inf
-        for i in range(n_sub):
-            s0 = i * frac
-            sub_hi[i] = max(horner(r, k, t * s0), horner(r, k, t * (s0 + frac)))
-            best = max(best, sub_hi[i])
-        top = -np.inf
-        n_live = 0
-        for i in range(n_sub):
-            sub_part[i] = -np.inf
-            if sub_hi[i] < best - negligible:
-                continue
-            n_live += 1
-            s0 = i * frac
-            m = -np.inf
-            for j in range(x8.shape[0]):
-                sub_vals[j] = horner(r, k, t * (s0 + frac * x8[j])) + ln_w8[j]
-                m = max(m, sub_vals[j])
-            acc = 0.0
-            for j in range(x8.shape[0]):
-                acc += math.exp(sub_vals[j] - m)
-            sub_part[i] = math.log(acc) + m + ln_frac
-            top = max(top, sub_part[i])
-        if n_live == 1:  # the sum below is exp(0) = 1 exactly
-            return top + math.log(t * h)
-        tot = 0.0
-        for i in range(n_sub):
-            if sub_part[i] > -np.inf:
-                tot += math.exp(sub_part[i] - top)
-        return top + math.log(tot) + math.log(t * h)
-
     for r in range(n_rows):
         y_a = _row_breaks(r, lz, lsd, n_lim, det, grades, inactive, brk[r])
         cut = top_phi[r]
@@ -202,76 +138,16 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
             cut = min(cut, det[r, 1] + det[r, 2] + skip_peak * det[r, 5])
         for k in range(nb - 1):
             a, h = brk[r, k], brk[r, k + 1] - brk[r, k]
-            top = -np.inf
-            low = np.inf
             if h > 0 and a <= cut:
                 for j in range(n):
                     y = a + h * xn[j]
-                    qv[j] = y + log_h(y, r, False)
-                    top = max(top, qv[j])
-                    low = min(low, qv[j])
-                live[r, k] = qv[0] > -np.inf
-                for i in range(n):
-                    c = 0.0
-                    for j in range(n):
-                        c += amat[i, j] * qv[j]
-                    coef[r, k, i] = c
-            if top > -np.inf:
-                spread[k] = top - low
-                s = 0.0
-                for j in range(n):
-                    s += math.exp(qv[j] - top) * wn[j]
-                crude[k] = math.log(h * s) + top
-                bound[k] = top + math.log(h)
-            else:
-                spread[k] = 0.0
-                crude[k] = -np.inf
-                bound[k] = math.log(h) if h > 0 else -np.inf
-        # ln C at each panel start: the crude Gauss sums decide which steep panels to refine
-        start = y_a + log_h(y_a, r, True)
-        log_c[r, 0] = start
-        for k in range(nb - 1):
-            panel = crude[k]
-            h = brk[r, k + 1] - brk[r, k]
-            if (panel > -np.inf and h > 0 and spread[k] > gentle
-                    and bound[k] > start - diluted):
-                panel = log_partial(r, k, 1.0, h, spread[k])
-            start = _logaddexp(start, crude[k])
-            log_c[r, k + 1] = _logaddexp(log_c[r, k], panel)
-            # -1: a diluted panel, whose reads take ln C at its start (steady._DILUTED)
-            read_spread[r, k] = -1.0 if log_c[r, k] > bound[k] + diluted else spread[k]
-    out = np.empty(phi.shape[0])
-    prev_r, p = -1, 0
+                    q[r, k * n + j] = y + log_h(y, r, False)
+        tail0[r] = y_a + log_h(y_a, r, True)
+    out = table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, consts)
+    # below a row's table the limits are all but certain to pass: ln F in closed form
     for i in range(phi.shape[0]):
-        r, p_i = row[i], phi[i]
-        if p_i < brk[r, 0]:
-            out[i] = log_h(p_i, r, True)
-            continue
-        # the last break <= p_i (searchsorted side="right", minus one); a row's reads come
-        # in runs of nearby phi (a walker's distance nodes), so start from the previous one
-        if r != prev_r:
-            p, hi = 0, nb
-            while hi - p > 1:
-                mid = (p + hi) >> 1
-                if brk[r, mid] <= p_i:
-                    p = mid
-                else:
-                    hi = mid
-        else:
-            while p < nb - 1 and brk[r, p + 1] <= p_i:
-                p += 1
-            while brk[r, p] > p_i:
-                p -= 1
-        prev_r = r
-        if p >= nb - 1:
-            out[i] = log_c[r, nb - 1] - p_i
-            continue
-        a, h = brk[r, p], brk[r, p + 1] - brk[r, p]
-        t = min(max((p_i - a) / h, 0.0), 1.0) if h > 0 else 0.0
-        part = -np.inf
-        if t > 0 and live[r, p] and read_spread[r, p] >= 0.0:
-            part = log_partial(r, p, t, h, read_spread[r, p])
-        out[i] = _logaddexp(log_c[r, p], part) - p_i
+        if phi[i] < brk[row[i], 0]:
+            out[i] = log_h(phi[i], row[i], True)
     return out
 
 
@@ -283,9 +159,10 @@ def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, c
     ``row`` (N,); returns ln[e^-phi C(phi)] (N,). Every read must lie at or above its row's
     first break (the caller's table starts below every read; a read below it is NaN).
 
-    The same rules as :func:`body_spin_with_limits` (its table part, with q given instead
-    of computed; the two are kept alike by ``tests/test_agedspin.py``, which holds this one
-    to the array code). ``consts`` as there.
+    The table part of :func:`body_spin_with_limits`, which calls it with q computed from the
+    limits, and of the age tables (``agedspin.body_spin_table``), with q from the age sums;
+    held to the array code by ``tests/test_steady.py`` and ``tests/test_agedspin.py``.
+    ``consts`` as there.
     """
     sub_range, negligible, diluted, gentle = consts[2], consts[3], consts[4], consts[5]
     n_rows, nb = brk.shape
@@ -304,8 +181,8 @@ def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, c
     for j in range(x8.shape[0]):
         ln_w8[j] = math.log(w8[j])
 
-    # inner functions: numba inlines them and the arrays stay this function's own (see
-    # body_spin_with_limits)
+    # inner functions: numba inlines them and the arrays they read stay this function's own
+    # (a compiled function taking arrays pays an atomic reference count per array per call)
     def horner(r, k, x):
         acc = coef[r, k, n - 1] * x + coef[r, k, n - 2]
         for j in range(n - 3, -1, -1):
