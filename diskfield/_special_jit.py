@@ -109,8 +109,11 @@ def log_ndtr_ftz(x):
 
 @intrinsic
 def _bits_as_float(typingctx, bits):
-    """The float64 whose IEEE bits are the int64 ``bits`` (a bit cast)."""
-    sig = types.float64(types.int64)
+    """The float64 whose IEEE bits are the 64-bit integer ``bits``, signed or not (a bit
+    cast)."""
+    if not (isinstance(bits, types.Integer) and bits.bitwidth == 64):
+        return None
+    sig = types.float64(bits)
 
     def codegen(context, builder, signature, args):
         return builder.bitcast(args[0], context.get_value_type(types.float64))
@@ -130,17 +133,6 @@ def _float_bits(typingctx, x):
     return sig, codegen
 
 
-@intrinsic
-def _ubits_as_float(typingctx, bits):
-    """The float64 whose IEEE bits are the uint64 ``bits`` (a bit cast)."""
-    sig = types.float64(types.uint64)
-
-    def codegen(context, builder, signature, args):
-        return builder.bitcast(args[0], context.get_value_type(types.float64))
-
-    return sig, codegen
-
-
 #: fdlibm's e_log.c minimax coefficients of (ln(1 + f) - f + f^2/2) in s = f / (2 + f)
 #: (Sun Microsystems 1993; error below 1 ulp).
 _LG1, _LG2, _LG3 = 6.666666666666735130e-01, 3.999999999940941908e-01, 2.857142874366239149e-01
@@ -156,10 +148,10 @@ def log_vec(x):
     negative x and NaN; subnormal x are not supported (their result is wrong). Selects only,
     so a loop over it can vectorise (``benchmarks/bench_likelihood.py`` (f))."""
     bits = _float_bits(x)
-    m = _ubits_as_float((bits & np.uint64(0x000FFFFFFFFFFFFF))
+    m = _bits_as_float((bits & np.uint64(0x000FFFFFFFFFFFFF))
                         | np.uint64(0x3FF0000000000000))                    # in [1, 2)
     # the biased exponent as a float through 2^52's mantissa (AVX2 has no int64 -> float)
-    e = _ubits_as_float((bits >> np.uint64(52)) | np.uint64(0x4330000000000000)) \
+    e = _bits_as_float((bits >> np.uint64(52)) | np.uint64(0x4330000000000000)) \
         - 4503599627370496.0
     big = m > _SQRT2
     m = m * 0.5 if big else m
