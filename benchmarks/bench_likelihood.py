@@ -195,22 +195,17 @@ def _special_function(rng):
                 out[i] = f(x[i])
         return run
 
-    y = rng.uniform(-40.0, 0.0, len(x))
-    exp_i, exp_m = mapped(_special_jit.exp_ftz), mapped(math.exp)
-    t_i = _timed(lambda: exp_i(y, out), 5)
-    t_m = _timed(lambda: exp_m(y, out), 5)
-    t_n = _timed(lambda: np.exp(y, out=out), 5)
-    print(f"    exp per element, x ~ U(-40, 0): inlined {per * t_i:.1f} ns, C library "
-          f"{per * t_m:.1f} ns, numpy.exp {per * t_n:.1f} ns (C library / inlined "
-          f"{t_m / t_i:.1f}x)")
-    log_i, log_m = mapped(_special_jit.log_vec), mapped(math.log)
-    z = rng.uniform(0.1, 100.0, len(x))
-    t_i = _timed(lambda: log_i(z, out), 5)
-    t_m = _timed(lambda: log_m(z, out), 5)
-    t_n = _timed(lambda: np.log(z, out=out), 5)
-    print(f"    ln per element, x ~ U(0.1, 100): inlined {per * t_i:.1f} ns, C library "
-          f"{per * t_m:.1f} ns, numpy.log {per * t_n:.1f} ns (C library / inlined "
-          f"{t_m / t_i:.1f}x)")
+    for name, inlined, libm, ufunc, lo, hi in (
+            ("exp", _special_jit.exp_ftz, math.exp, np.exp, -40.0, 0.0),
+            ("ln", _special_jit.log_vec, math.log, np.log, 0.1, 100.0)):
+        y = rng.uniform(lo, hi, len(x))
+        run_i, run_m = mapped(inlined), mapped(libm)
+        t_i = _timed(lambda: run_i(y, out), 5)
+        t_m = _timed(lambda: run_m(y, out), 5)
+        t_n = _timed(lambda: ufunc(y, out=out), 5)
+        print(f"    {name} per element, x ~ U({lo:g}, {hi:g}): inlined {per * t_i:.1f} ns, "
+              f"C library {per * t_m:.1f} ns, numpy.{ufunc.__name__} {per * t_n:.1f} ns "
+              f"(C library / inlined {t_m / t_i:.1f}x)")
 
 
 def _compiled_versus_array(comp, pset, w, rng, args):
