@@ -219,10 +219,9 @@ def _age_rule(ages, envelope, p, s, var=None):
         t_flat, lw_flat, row, col, n_q = kernel.lay_out_nodes(
             measure, lo, hi, ages.kind, ages.a, ages.b, x, np.log(wx))
         per_walker = int(np.prod(shape[1:]))
-        wi = row // per_walker
+        wi, rec = np.divmod(row, per_walker)          # walker; (body, record) flat
         for prior, mask in ages.window.values():
-            gr = (row % per_walker)
-            sel = np.flatnonzero(mask.ravel()[gr])
+            sel = np.flatnonzero(mask.ravel()[rec])
             if len(sel):
                 lw_flat[sel] += prior.log_prob(t_flat[sel])
         lf_flat = envelope.log_factor(t_flat[:, None], {k: v[wi][:, None]
