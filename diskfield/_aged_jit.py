@@ -17,6 +17,7 @@ import math
 import numpy as np
 from numba import njit
 
+from ._rule_jit import _insertion_sort
 from ._special_jit import exp_ftz, log_ndtr, log_ndtr_ftz
 
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
@@ -186,13 +187,7 @@ def lay_out_nodes(measure, lo, hi, kind, a, b, gl_x, gl_logw):
                 l0, h0 = lo[g, r], hi[g, r]
                 brk[n_j], brk[n_j + 1] = l0, h0
                 brk[n_j + 2] = min(max(0.0, l0), h0)
-                for i in range(1, n_b):            # insertion sort: the measure's run is sorted
-                    x = brk[i]
-                    k = i - 1
-                    while k >= 0 and brk[k] > x:
-                        brk[k + 1] = brk[k]
-                        k -= 1
-                    brk[k + 1] = x
+                _insertion_sort(brk, n_b)            # the measure's run is sorted already
                 kd, pa, pb = kind[g, r], a[g, r], b[g, r]
                 if kd == 0:
                     inv = 1.0 / pb if pb > 0 else 0.0       # padding records have no panels

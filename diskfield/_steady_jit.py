@@ -17,6 +17,7 @@ import math
 import numpy as np
 from numba import njit
 
+from ._rule_jit import _insertion_sort
 from ._special_jit import log1p, log_ndtr
 
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
@@ -63,14 +64,8 @@ def _row_breaks(r, lz, lsd, n_lim, det, grades, inactive, pts):
     pts[nb - 1] = y_b
     for i in range(nb):
         pts[i] = min(max(pts[i], y_a), y_b)
-    # insertion sort: a few dozen values, mostly in runs already sorted (the graded points)
-    for i in range(1, nb):
-        x = pts[i]
-        j = i - 1
-        while j >= 0 and pts[j] > x:
-            pts[j + 1] = pts[j]
-            j -= 1
-        pts[j + 1] = x
+    # a few dozen values, mostly in runs already sorted (the graded points)
+    _insertion_sort(pts, nb)
     return y_a
 
 
