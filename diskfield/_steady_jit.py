@@ -18,7 +18,7 @@ import numpy as np
 from numba import njit
 
 from ._rule_jit import _insertion_sort
-from ._special_jit import log1p, log_ndtr
+from ._special_jit import exp_ftz, log1p, log_ndtr, log_vec
 
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 
@@ -267,9 +267,22 @@ def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, c
             start = _logaddexp(start, crude[k])
             log_c[r, k + 1] = _logaddexp(log_c[r, k], panel)
             read_spread[r, k] = -1.0 if log_c[r, k] > bound[k] + diluted else spread[k]
-    out = np.empty(phi.shape[0])
+    # the reads: each one's panel (a scalar pass); a read past the table's last break, below
+    # its first (NaN), or with nothing to add inside its panel (t = 0, a dead or diluted
+    # panel) is done there, and so is one through sub-panels; the 3- and 6-node partials
+    # and their ln-sum-exp with ln C at the panel start are taken in passes over the reads
+    # that vectorise (a read in one scalar pass cost ~3x more)
+    n_ph = phi.shape[0]
+    out = np.empty(n_ph)
+    cf = coef.reshape(-1)
+    pick3 = np.empty(n_ph, np.int64)
+    pick6 = np.empty(n_ph, np.int64)
+    base = np.empty(n_ph, np.uint64)
+    t_at = np.empty(n_ph)
+    th_at = np.empty(n_ph)
+    n3, n6 = 0, 0
     prev_r, p = -1, 0
-    for i in range(phi.shape[0]):
+    for i in range(n_ph):
         r, p_i = row[i], phi[i]
         if not p_i >= brk[r, 0]:
             out[i] = np.nan
@@ -293,8 +306,66 @@ def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, c
             continue
         a, h = brk[r, p], brk[r, p + 1] - brk[r, p]
         t = min(max((p_i - a) / h, 0.0), 1.0) if h > 0 else 0.0
-        part = -np.inf
-        if t > 0 and live[r, p] and read_spread[r, p] >= 0.0:
-            part = log_partial(r, p, t, h, read_spread[r, p])
-        out[i] = _logaddexp(log_c[r, p], part) - p_i
+        if not (t > 0 and live[r, p] and read_spread[r, p] >= 0.0):
+            out[i] = log_c[r, p] - p_i
+            continue
+        need = read_spread[r, p] * t
+        if need > 6.0:
+            out[i] = _logaddexp(log_c[r, p], log_partial(r, p, t, h, read_spread[r, p])) - p_i
+            continue
+        base[i] = np.uint64((r * (nb - 1) + p) * n)
+        t_at[i], th_at[i] = t, t * h
+        out[i] = log_c[r, p]            # the gentle passes add the partial and take phi off
+        if need <= 1.5:
+            pick3[n3] = i
+            n3 += 1
+        else:
+            pick6[n6] = i
+            n6 += 1
+    _gentle_reads(pick3[:n3], x3, w3, cf, base, t_at, th_at, phi, out, n)
+    _gentle_reads(pick6[:n6], x6, w6, cf, base, t_at, th_at, phi, out, n)
     return out
+
+
+@njit(cache=True, error_model="numpy")
+def _gentle_reads(pick, xg, wg, cf, base, t_at, th_at, phi, out, n):
+    """For the reads ``pick``: out = ln(C + P) - phi, with C = e^out on entry the integral up
+    to the read's panel start and P = t h sum_j w_j exp(q~(t x_j)) its partial in the panel
+    by the Gauss rule ``xg``, ``wg``: ``log_partial``'s gentle branch, as passes over the
+    reads. Each read's panel coefficients are first copied from the flat ``cf`` (at
+    ``base``) into rows by degree, so every later pass is a loop over contiguous arrays
+    without branches, which vectorises."""
+    m_n = pick.shape[0]
+    if m_n == 0:
+        return
+    cs = np.empty((n, m_n))
+    ts = np.empty(m_n)
+    ths = np.empty(m_n)
+    lcs = np.empty(m_n)
+    phs = np.empty(m_n)
+    acc = np.zeros(m_n)
+    hv = np.empty(m_n)
+    for m in range(m_n):
+        i = pick[m]
+        b = base[i]
+        for d in range(n):
+            cs[d, m] = cf[b + np.uint64(d)]
+        ts[m], ths[m], lcs[m], phs[m] = t_at[i], th_at[i], out[i], phi[i]
+    for j in range(xg.shape[0]):
+        xj, wj = xg[j], wg[j]
+        # Horner's rule on the panel's monomial coefficients at s = t x_j
+        for m in range(m_n):
+            hv[m] = cs[n - 1, m]
+        for d in range(n - 2, -1, -1):
+            for m in range(m_n):
+                hv[m] = hv[m] * (ts[m] * xj) + cs[d, m]
+        for m in range(m_n):
+            acc[m] += exp_ftz(hv[m] - cs[0, m]) * wj
+    for m in range(m_n):
+        # ln(e^lc + th s e^shift) - phi, with the larger exponent factored out
+        lc, shift = lcs[m], cs[0, m]
+        top = max(lc, shift)
+        hv[m] = (top + log_vec(exp_ftz(lc - top) + (acc[m] * ths[m]) * exp_ftz(shift - top))
+                 - phs[m])
+    for m in range(m_n):
+        out[pick[m]] = hv[m]
