@@ -269,18 +269,19 @@ def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, c
             read_spread[r, k] = -1.0 if log_c[r, k] > bound[k] + diluted else spread[k]
     # the reads: each one's panel (a scalar pass); a read past the table's last break, below
     # its first (NaN), or with nothing to add inside its panel (t = 0, a dead or diluted
-    # panel) is done there, and so is one through sub-panels; the 3- and 6-node partials
-    # and their ln-sum-exp with ln C at the panel start are taken in passes over the reads
-    # that vectorise (a read in one scalar pass cost ~3x more)
+    # panel) is done there, and so is one through two or more sub-panels; the partials of
+    # 3, 6 and 8 nodes (one sub-panel) and their ln-sum-exp with ln C at the panel start
+    # are taken in passes over the reads that vectorise (:func:`_gentle_reads`)
     n_ph = phi.shape[0]
     out = np.empty(n_ph)
     cf = coef.reshape(-1)
     pick3 = np.empty(n_ph, np.int64)
     pick6 = np.empty(n_ph, np.int64)
+    pick8 = np.empty(n_ph, np.int64)
     base = np.empty(n_ph, np.uint64)
     t_at = np.empty(n_ph)
     th_at = np.empty(n_ph)
-    n3, n6 = 0, 0
+    n3, n6, n8 = 0, 0, 0
     prev_r, p = -1, 0
     for i in range(n_ph):
         r, p_i = row[i], phi[i]
@@ -310,32 +311,39 @@ def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, c
             out[i] = log_c[r, p] - p_i
             continue
         need = read_spread[r, p] * t
-        if need > 6.0:
+        if need > sub_range:
             out[i] = _logaddexp(log_c[r, p], log_partial(r, p, t, h, read_spread[r, p])) - p_i
             continue
         base[i] = np.uint64((r * (nb - 1) + p) * n)
         t_at[i], th_at[i] = t, t * h
-        out[i] = log_c[r, p]            # the gentle passes add the partial and take phi off
+        out[i] = log_c[r, p]            # the passes below add the partial and take phi off
         if need <= 1.5:
             pick3[n3] = i
             n3 += 1
-        else:
+        elif need <= 6.0:
             pick6[n6] = i
             n6 += 1
-    _gentle_reads(pick3[:n3], x3, w3, cf, base, t_at, th_at, phi, out, n)
-    _gentle_reads(pick6[:n6], x6, w6, cf, base, t_at, th_at, phi, out, n)
+        else:
+            pick8[n8] = i
+            n8 += 1
+    _gentle_reads(pick3[:n3], x3, w3, False, cf, base, t_at, th_at, phi, out, n)
+    _gentle_reads(pick6[:n6], x6, w6, False, cf, base, t_at, th_at, phi, out, n)
+    _gentle_reads(pick8[:n8], x8, w8, True, cf, base, t_at, th_at, phi, out, n)
     return out
 
 
 @njit(cache=True, error_model="numpy")
-def _gentle_reads(pick, xg, wg, cf, base, t_at, th_at, phi, out, n):
+def _gentle_reads(pick, xg, wg, by_max, cf, base, t_at, th_at, phi, out, n):
     """For the reads ``pick``: out = ln(C + P) - phi, with C = e^out on entry the integral up
     to the read's panel start and P = t h sum_j w_j exp(q~(t x_j)) its partial in the panel
-    by the Gauss rule ``xg``, ``wg``: ``log_partial``'s gentle branch, as passes over the
-    reads. Each read's panel coefficients are first copied from the flat ``cf`` (at
-    ``base``) into rows by degree, so every later pass is a loop over contiguous arrays
-    without branches, which vectorises."""
+    by the Gauss rule ``xg``, ``wg``, as passes over the reads: ``log_partial``'s gentle
+    branch (exps relative to q~(0)) or, with ``by_max``, its branch of one sub-panel (exps
+    of q~ + ln w relative to their largest). Each read's panel coefficients are first copied
+    from the flat ``cf`` (at ``base``) into rows by degree, so every later pass is a loop
+    over contiguous arrays without branches, which vectorises (a read in the scalar pass
+    cost ~2.5x more)."""
     m_n = pick.shape[0]
+    n_j = xg.shape[0]
     if m_n == 0:
         return
     cs = np.empty((n, m_n))
@@ -343,29 +351,46 @@ def _gentle_reads(pick, xg, wg, cf, base, t_at, th_at, phi, out, n):
     ths = np.empty(m_n)
     lcs = np.empty(m_n)
     phs = np.empty(m_n)
+    shift = np.empty(m_n)
     acc = np.zeros(m_n)
-    hv = np.empty(m_n)
+    hv = np.empty((n_j, m_n))
     for m in range(m_n):
         i = pick[m]
         b = base[i]
         for d in range(n):
             cs[d, m] = cf[b + np.uint64(d)]
         ts[m], ths[m], lcs[m], phs[m] = t_at[i], th_at[i], out[i], phi[i]
-    for j in range(xg.shape[0]):
-        xj, wj = xg[j], wg[j]
+    for j in range(n_j):
+        xj = xg[j]
         # Horner's rule on the panel's monomial coefficients at s = t x_j
         for m in range(m_n):
-            hv[m] = cs[n - 1, m]
+            hv[j, m] = cs[n - 1, m]
         for d in range(n - 2, -1, -1):
             for m in range(m_n):
-                hv[m] = hv[m] * (ts[m] * xj) + cs[d, m]
+                hv[j, m] = hv[j, m] * (ts[m] * xj) + cs[d, m]
+    if by_max:
         for m in range(m_n):
-            acc[m] += exp_ftz(hv[m] - cs[0, m]) * wj
+            shift[m] = -np.inf
+        for j in range(n_j):
+            lw = math.log(wg[j])
+            for m in range(m_n):
+                hv[j, m] += lw
+                shift[m] = max(shift[m], hv[j, m])
+        for j in range(n_j):
+            for m in range(m_n):
+                acc[m] += exp_ftz(hv[j, m] - shift[m])
+    else:
+        for m in range(m_n):
+            shift[m] = cs[0, m]
+        for j in range(n_j):
+            wj = wg[j]
+            for m in range(m_n):
+                acc[m] += exp_ftz(hv[j, m] - shift[m]) * wj
     for m in range(m_n):
         # ln(e^lc + th s e^shift) - phi, with the larger exponent factored out
-        lc, shift = lcs[m], cs[0, m]
-        top = max(lc, shift)
-        hv[m] = (top + log_vec(exp_ftz(lc - top) + (acc[m] * ths[m]) * exp_ftz(shift - top))
+        lc, sh = lcs[m], shift[m]
+        top = max(lc, sh)
+        ts[m] = (top + log_vec(exp_ftz(lc - top) + (acc[m] * ths[m]) * exp_ftz(sh - top))
                  - phs[m])
     for m in range(m_n):
-        out[pick[m]] = hv[m]
+        out[pick[m]] = ts[m]
