@@ -159,6 +159,32 @@ def _insertion_sort(a, m):
 
 
 @njit(cache=True)
+def _merge_next(a, n_a, n_b, buf):
+    """Merge the sorted runs a[:n_a] and a[n_a:n_a + n_b] in place (``buf`` scratch of at
+    least n_a + n_b); an unsorted second run is merged by insertion instead."""
+    end = n_a + n_b
+    for j in range(n_a + 1, end):
+        if not a[j] >= a[j - 1]:
+            _insertion_sort(a, end)
+            return
+    i, j, k = 0, n_a, 0
+    while i < n_a and j < end:
+        if a[j] < a[i]:
+            buf[k] = a[j]
+            j += 1
+        else:
+            buf[k] = a[i]
+            i += 1
+        k += 1
+    while i < n_a:
+        buf[k] = a[i]
+        i += 1
+        k += 1
+    for k in range(j):      # a[j:] is already in place
+        a[k] = buf[k]
+
+
+@njit(cache=True)
 def _monotone_runs(phi, runs):
     """Split ``phi`` (S,) into runs over which it is monotone (equal neighbours continue a
     run); run k spans indices runs[k]..runs[k + 1] (neighbouring runs share their end).
@@ -336,7 +362,16 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
             feat[k_f] = c[2]
         for i in range(n_scout):
             scout[i] = _clip(scout[i], r_min, r_max)
-        _insertion_sort(scout, n_scout)
+        # the fixed points, each ring's and the break are sorted runs (clipping keeps their
+        # order): merged one after another (an insertion sort of the rings' points into the
+        # fixed ones cost ~10 % of the rule for two rings)
+        m = fixed.shape[0]
+        _insertion_sort(scout, m)
+        for k in range(n_rings):
+            _merge_next(scout, m, ring_u.shape[0], tmp)
+            m += ring_u.shape[0]
+        if has_break:
+            _merge_next(scout, m, 1, tmp)
         _field_nodes(scout, phi_s, tmp, n_scout, c, n_rings, has_break, min_factor)
         # runs of the scout grid over which ln R is monotone (ties continue a run): a level
         # crosses each at most once, so a body's crossings are found by bisection per run
