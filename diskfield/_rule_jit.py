@@ -346,6 +346,21 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
     wi_out = np.empty(cap, np.int64)
     gi_out = np.empty(cap, np.int64)
     r_min, r_max = lo.min(), hi.max()
+    # the distinct support ends (bodies of one reservoir share theirs): ln R at each is
+    # taken once per walker; end_at[g] / end_at[n_g + g] index body g's lower / upper end
+    ends = np.empty(2 * n_g)
+    end_at = np.empty(2 * n_g, np.int64)
+    n_ends = 0
+    for i in range(2 * n_g):
+        x = lo[i] if i < n_g else hi[i - n_g]
+        e = 0
+        while e < n_ends and ends[e] != x:
+            e += 1
+        if e == n_ends:
+            ends[e] = x
+            n_ends += 1
+        end_at[i] = e
+    ph_end = np.empty(n_ends)
     scout = np.empty(n_scout)
     phi_s = np.empty(n_scout)
     runs = np.empty(n_scout + 1, np.int64)
@@ -396,6 +411,8 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
         # runs of the scout grid over which ln R is monotone (ties continue a run): a level
         # crosses each at most once, so a body's crossings are found by bisection per run
         n_runs = _monotone_runs(phi_s, runs)
+        for e in range(n_ends):
+            ph_end[e] = log_field(ends[e], c, n_rings, has_break, min_factor)
         for g in range(n_g):
             lev, sc, a_lo, a_hi = level[w, g], scale[w, g], lo[g], hi[g]
             # first crossings of the level inside the support (``quadrature.first_crossings``:
@@ -458,8 +475,7 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
                         at_hi = True
                     else:
                         at_lo = True
-            ph_lo = log_field(a_lo, c, n_rings, has_break, min_factor)
-            ph_hi = log_field(a_hi, c, n_rings, has_break, min_factor)
+            ph_lo, ph_hi = ph_end[end_at[g]], ph_end[end_at[n_g + g]]
             use_lo = abs(ph_lo - lev) <= abs(ph_hi - lev)
             edge = a_lo if use_lo else a_hi
             inward = 1.0 if use_lo else -1.0
