@@ -441,12 +441,14 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
                 width[k] = 0.0            # unused slot: its graded breaks all sit at lo
             if not found[0]:
                 # closest approach on the scout grid (``_approach_point``)
+                # the scout points inside the support: one run of the sorted grid
                 best, kb = np.inf, 0
-                for i in range(n_scout):
-                    if scout[i] >= a_lo and scout[i] <= a_hi:
-                        d = abs(phi_s[i] - lev)
-                        if d < best:
-                            best, kb = d, i
+                for i in range(_first_at_least(scout, n_scout, a_lo), n_scout):
+                    if scout[i] > a_hi:
+                        break
+                    d = abs(phi_s[i] - lev)
+                    if d < best:
+                        best, kb = d, i
                 km, kp = max(kb - 1, 0), min(kb + 1, n_scout - 1)
                 r0, rm, rp = scout[kb], scout[km], scout[kp]
                 f0, fm, fp = phi_s[kb], phi_s[km], phi_s[kp]
