@@ -86,21 +86,24 @@ def _first_at_least(x, n_x, value):
 
 
 @njit(cache=True, error_model="numpy")
-def _field_nodes(x, out, tmp, n_x, c, n_rings, has_break, min_factor):
+def _field_nodes(x, out, tmp, lx, n_x, c, n_rings, has_break, min_factor):
     """ln R at increasing ``x[:n_x]`` into ``out[:n_x]``: :func:`log_field` in passes over
     the nodes (the power law, then each ring) that the compiler vectorises. A ring's passes
     cover only the nodes where it can change ln R (within its z^2 cut, with a margin: the
     nodes are sorted, so they are one run, found by bisection); the values agree with
     :func:`log_field` to ~1e-16 (a ring's factor is taken at every node of the run, and
-    below |x| = 1e-4 ln(1 + x) is its series). ``tmp`` (at least n_x) is scratch."""
+    below |x| = 1e-4 ln(1 + x) is its series). ``tmp`` (at least n_x) is scratch; ``lx``
+    receives ln x (the distance prior's term reads it)."""
+    for k in range(n_x):
+        lx[k] = log_vec(x[k])
     if has_break:
         lrb = c[14]
         for k in range(n_x):
-            lr = log_vec(x[k])
+            lr = lx[k]
             out[k] = c[0] - c[1] * min(lr, lrb) - c[3] * max(lr - lrb, 0.0)
     else:
         for k in range(n_x):
-            out[k] = c[0] - c[1] * log_vec(x[k])
+            out[k] = c[0] - c[1] * lx[k]
     floor = min_factor - 1.0
     for i in range(n_rings):
         amp, r0, inv, cut = c[4 + 3 * i], c[5 + 3 * i], c[10 + i], c[12 + i]
@@ -375,6 +378,7 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
     lws = np.empty((n_brk - 1) * n)
     phs = np.empty((n_brk - 1) * n)
     tmp = np.empty(max((n_brk - 1) * n, n_scout))
+    lxs = np.empty(max((n_brk - 1) * n, n_scout))
     pos = 0
     for w in range(n_w):
         c = _coefficients(form, w)
@@ -407,7 +411,7 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
             m += ring_u.shape[0]
         if has_break:
             _merge_next(scout, m, 1, tmp)
-        _field_nodes(scout, phi_s, tmp, n_scout, c, n_rings, has_break, min_factor)
+        _field_nodes(scout, phi_s, tmp, lxs, n_scout, c, n_rings, has_break, min_factor)
         # runs of the scout grid over which ln R is monotone (ties continue a run): a level
         # crosses each at most once, so a body's crossings are found by bisection per run
         n_runs = _monotone_runs(phi_s, runs)
@@ -511,20 +515,25 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
                     xs[k_t] = brk[i] + h * gl_x[j]
                     lws[k_t] = lh + gl_logw[j]
                     k_t += 1
-            _field_nodes(xs, phs, tmp, k_t, c, n_rings, has_break, min_factor)
+            _field_nodes(xs, phs, tmp, lxs, k_t, c, n_rings, has_break, min_factor)
             if fused:
                 p_c, p_k, p_mu, p_s = prior[g, 0], prior[g, 1], prior[g, 2], prior[g, 3]
                 for k in range(k_t):
                     dx = (xs[k] - p_mu) * p_s
-                    lws[k] += p_c - 0.5 * dx * dx - p_k * log_vec(xs[k])
+                    lws[k] += p_c - 0.5 * dx * dx - p_k * lxs[k]
             if not (fused and closed[g] == 1):
-                for k in range(k_t):
-                    r_out[pos] = xs[k]
-                    lw_out[pos] = lws[k]
-                    phi_out[pos] = phs[k]
-                    wi_out[pos] = w
-                    gi_out[pos] = g
-                    pos += 1
+                # one loop per array, at an unsigned offset: they vectorise
+                at = np.uint64(pos)
+                for k in range(np.uint64(k_t)):
+                    r_out[at + k] = xs[k]
+                for k in range(np.uint64(k_t)):
+                    lw_out[at + k] = lws[k]
+                for k in range(np.uint64(k_t)):
+                    phi_out[at + k] = phs[k]
+                for k in range(np.uint64(k_t)):
+                    wi_out[at + k] = w
+                    gi_out[at + k] = g
+                pos += k_t
                 continue
             # K EMG(ph - zbar; V) = ln K - (ph - zbar) + V/2 + ln Phi((ph - zbar - V) / sqrt V)
             # (recording.emg_logpdf); ln Phi from the table, its far lower tail (x < -40,
