@@ -18,7 +18,8 @@ import numpy as np
 from numba import njit
 
 from ._rule_jit import _insertion_sort
-from ._special_jit import exp_ftz, log1p, log_ndtr, log_vec
+from ._special_jit import _X0 as _TABLE_LOW
+from ._special_jit import exp_ftz, log1p, log_ndtr, log_ndtr_ftz, log_vec
 
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 
@@ -69,7 +70,7 @@ def _row_breaks(r, lz, lsd, n_lim, det, grades, inactive, pts):
     return y_a
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat, x3, w3,
                           x6, w6, x8, w8, grades, consts):
     """ln F(phi) at flat reads ``phi`` (N,) of rows ``row`` (N,); per-row data (R, ...).
@@ -126,17 +127,50 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
             out += log_ndtr((lz[r, j] - y) / lsd[r, j])
         return out
 
+    ys = np.empty((nb - 1) * n)
+    kept = np.empty(nb - 1, np.int64)
+    acc = np.empty((nb - 1) * n)
     for r in range(n_rows):
         y_a = _row_breaks(r, lz, lsd, n_lim, det, grades, inactive, brk[r])
         cut = top_phi[r]
         if det[r, 0] != 0.0:
             cut = min(cut, det[r, 1] + det[r, 2] + skip_peak * det[r, 5])
+        # q = Y + ln h(Y) at the nodes of the panels of positive width that start at or
+        # below the cut, compacted, in passes over the nodes that vectorise (log_h, term by
+        # term in its order), then put in place
+        n_k = 0
         for k in range(nb - 1):
             a, h = brk[r, k], brk[r, k + 1] - brk[r, k]
-            if h > 0 and a <= cut:
+            if not a <= cut:
+                break
+            if h > 0:
                 for j in range(n):
-                    y = a + h * xn[j]
-                    q[r, k * n + j] = y + log_h(y, r, False)
+                    ys[n_k * n + j] = a + h * xn[j]
+                kept[n_k] = k
+                n_k += 1
+        m = n_k * n
+        if det[r, 0] != 0.0:
+            zb, vr, lk, half_ln_v = det[r, 1], det[r, 2], det[r, 3], det[r, 4]
+            for i in range(m):
+                acc[i] = lk - 0.5 * (zb - ys[i]) ** 2 / vr - half_ln_v - _LN_SQRT_2PI
+        else:
+            for i in range(m):
+                acc[i] = 0.0
+        for j in range(n_lim[r]):
+            zj, sj = lz[r, j], lsd[r, j]
+            # the nodes increase, so the argument falls: those below the table's start
+            # (the far tail, through the asymptotic series) are a suffix
+            i_lo = m
+            while i_lo > 0 and not (zj - ys[i_lo - 1]) / sj >= _TABLE_LOW:
+                i_lo -= 1
+            for i in range(i_lo):
+                acc[i] += log_ndtr_ftz((zj - ys[i]) / sj)
+            for i in range(i_lo, m):
+                acc[i] += log_ndtr((zj - ys[i]) / sj)
+        for i in range(n_k):
+            k = kept[i]
+            for j in range(n):
+                q[r, k * n + j] = ys[i * n + j] + acc[i * n + j]
         tail0[r] = y_a + log_h(y_a, r, True)
     out = table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, consts)
     # below a row's table the limits are all but certain to pass: ln F in closed form
