@@ -30,7 +30,7 @@ from ._special_jit import exp_ftz, log1p, log_ndtr, log_ndtr_ftz, log_vec
 _LN_TINY = math.log(1e-17)
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def _ring_constants(amp, width):
     """A ring's inverse width and the z^2 above which |A| exp(-z^2 / 2) < 1e-17 (at most
     1491, where exp underflows to 0)."""
@@ -40,7 +40,7 @@ def _ring_constants(amp, width):
     return inv, min(1491.0, 2.0 * (math.log(abs(amp)) - _LN_TINY))
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def _coefficients(form, w):
     """Row ``w`` of ``form`` as a tuple, with per-walker constants appended: each ring's
     inverse width and z^2 cut (:func:`_ring_constants`), ln of the break radius. Passed by
@@ -53,7 +53,7 @@ def _coefficients(form, w):
             form[w, 6], form[w, 7], form[w, 8], form[w, 9], inv1, inv2, cut1, cut2, ln_break)
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def log_field(r, c, n_rings, has_break, min_factor):
     """ln R at one distance ``r`` [AU] for the coefficients ``c`` (:func:`_coefficients`)."""
     lr = math.log(r)
@@ -72,7 +72,7 @@ def log_field(r, c, n_rings, has_break, min_factor):
     return val
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def _first_at_least(x, n_x, value):
     """The first index k < n_x with x[k] >= value in increasing ``x`` (n_x if none)."""
     lo, hi = 0, n_x
@@ -85,7 +85,7 @@ def _first_at_least(x, n_x, value):
     return lo
 
 
-@njit(cache=True, error_model="numpy")
+@njit(cache=True, error_model="numpy", fastmath={"contract"})
 def _field_nodes(x, out, tmp, lx, n_x, c, n_rings, has_break, min_factor):
     """ln R at increasing ``x[:n_x]`` into ``out[:n_x]``: :func:`log_field` in passes over
     the nodes (the power law, then each ring) that the compiler vectorises. A ring's passes
@@ -125,7 +125,7 @@ def _field_nodes(x, out, tmp, lx, n_x, c, n_rings, has_break, min_factor):
             out[k] += series if abs(a) < 1e-4 else log_vec(1.0 + a)
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def log_field_rows(r, form, n_rings, has_break, min_factor):
     """ln R at distances ``r`` (W, K) [AU], row w with the coefficients ``form[w]``."""
     out = np.empty(r.shape)
@@ -136,19 +136,19 @@ def log_field_rows(r, form, n_rings, has_break, min_factor):
     return out
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def _clip(x, lo, hi):
     return min(max(x, lo), hi)
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def _secant(lo, hi, f_lo, f_hi):
     den = f_lo - f_hi
     t = f_lo / den if abs(den) > 0 else 0.5
     return lo + _clip(t, 0.0, 1.0) * (hi - lo)
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def _refine(lo, hi, f_lo, f_hi, c, n_rings, has_break, mf, level):
     """Illinois regula falsi, three evaluations (``quadrature.refine_crossings``)."""
     side = 0
@@ -168,7 +168,7 @@ def _refine(lo, hi, f_lo, f_hi, c, n_rings, has_break, mf, level):
     return _secant(lo, hi, f_lo, f_hi)
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def _insertion_sort(a, m):
     """Sort a[:m] in place: a few dozen breaks, mostly in sorted runs (faster here than
     ``np.sort``'s introsort)."""
@@ -181,7 +181,7 @@ def _insertion_sort(a, m):
         a[j + 1] = x
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def _merge_next(a, n_a, n_b, buf):
     """Merge the sorted runs a[:n_a] and a[n_a:n_a + n_b] in place (``buf`` scratch of at
     least n_a + n_b); an unsorted second run is merged by insertion instead."""
@@ -207,7 +207,7 @@ def _merge_next(a, n_a, n_b, buf):
         a[k] = buf[k]
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def _monotone_runs(phi, runs):
     """Split ``phi`` (S,) into runs over which it is monotone (equal neighbours continue a
     run); run k spans indices runs[k]..runs[k + 1] (neighbouring runs share their end).
@@ -228,7 +228,7 @@ def _monotone_runs(phi, runs):
     return n_runs + 1
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def _sign_change(phi, level, i0, i1):
     """The interval (i, i + 1) of a monotone run i0..i1 where phi - level changes sign
     (``phi - level > 0`` differs at its ends), or -1 when it does not."""
@@ -244,7 +244,7 @@ def _sign_change(phi, level, i0, i1):
     return i0
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def _tail_width(centre, level, scale, c, n_rings, has_break, mf):
     """``likelihood._tail_width`` at one point."""
     h = 1e-4 * max(scale, 1e-3) * max(centre, 0.1)
@@ -261,7 +261,7 @@ def _tail_width(centre, level, scale, c, n_rings, has_break, mf):
                min(1.0 / max(g1, 1e-12), 1.0 / math.sqrt(max(g2, 1e-24))))
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixed,
                  ring_u, offsets, grades, gl_x, gl_logw, max_count):
     """Nodes of the distance rule with positive weight, flat, ordered by walker, body, panel
@@ -284,7 +284,7 @@ def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, bas
     return r, lw, phi, wi, gi
 
 
-@njit(cache=True, error_model="numpy")
+@njit(cache=True, error_model="numpy", fastmath={"contract"})
 def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixed, ring_u,
           offsets, grades, gl_x, gl_logw, max_count, fused, closed, prior, zbar, v, ln_k):
     """The distance rule, one pass per (walker, body); with ``fused`` the closed bodies'
@@ -342,7 +342,11 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
     n_brk = base.shape[1] + n_graded * max_count + n_f + n_feat
     n_scout = fixed.shape[0] + ring_u.shape[0] * n_rings + (1 if has_break else 0)
     n = gl_x.shape[0]
-    cap = n_w * n_g * (n_brk - 1) * n
+    n_open = 0              # bodies whose nodes are returned
+    for g in range(n_g):
+        if not (fused and closed[g] == 1):
+            n_open += 1
+    cap = n_w * n_open * (n_brk - 1) * n
     r_out = np.empty(cap)
     lw_out = np.empty(cap)
     phi_out = np.empty(cap)

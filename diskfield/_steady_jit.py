@@ -24,7 +24,7 @@ from ._special_jit import exp_ftz, log1p, log_ndtr, log_ndtr_ftz, log_vec
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def _logaddexp(a, b):
     if b == -np.inf:  # exact: a + log1p(exp(-inf)) is a, and most skipped panels add -inf
         return a
@@ -35,7 +35,7 @@ def _logaddexp(a, b):
     return b + log1p(math.exp(a - b))
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def _row_breaks(r, lz, lsd, n_lim, det, grades, inactive, pts):
     """Sorted Y breakpoints of row ``r`` into ``pts`` and the range start (see
     ``steady._y_breaks``)."""
@@ -70,7 +70,7 @@ def _row_breaks(r, lz, lsd, n_lim, det, grades, inactive, pts):
     return y_a
 
 
-@njit(cache=True, error_model="numpy")
+@njit(cache=True, error_model="numpy", fastmath={"contract"})
 def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat, x3, w3,
                           x6, w6, x8, w8, grades, consts):
     """ln F(phi) at flat reads ``phi`` (N,) of rows ``row`` (N,); per-row data (R, ...).
@@ -180,7 +180,7 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
     return out
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath={"contract"})
 def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, consts):
     """``steady._cumulative_table`` then ``steady._read_table`` in one compiled pass: the
     cumulative table ln C of rows with breaks ``brk`` (R, B), node values ``q`` (R, (B - 1) n)
@@ -366,7 +366,7 @@ def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, c
     return out
 
 
-@njit(cache=True, error_model="numpy")
+@njit(cache=True, error_model="numpy", fastmath={"contract"})
 def _gentle_reads(pick, xg, wg, by_max, cf, base, t_at, th_at, phi, out, n):
     """For the reads ``pick``: out = ln(C + P) - phi, with C = e^out on entry the integral up
     to the read's panel start and P = t h sum_j w_j exp(q~(t x_j)) its partial in the panel
