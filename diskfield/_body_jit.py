@@ -24,7 +24,7 @@ import numpy as np
 from numba import njit
 
 from ._special_jit import log_ndtr
-from ._rule_jit import _rule
+from ._rule_jit import _rule, carve
 from ._steady_jit import body_spin_with_limits
 
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
@@ -46,7 +46,7 @@ def _logaddexp(a, b):
 def steady_body_loglike(form, n_rings, has_break, min_factor, sigma, min_var, z, var_fixed,
                         det, lim, kind, lim_order, n_lim, lo, hi, base, fixed, ring_u,
                         offsets, grades, gl_x, gl_logw, max_count, prior, xn, wn, amat, x3,
-                        w3, x6, w6, x8, w8, y_grades, consts):
+                        w3, x6, w6, x8, w8, y_grades, consts, wsf, wsi, need):
     """Per-body log-likelihoods (W, G) of the steady envelope with the body-shared spin.
 
     Parameters
@@ -71,6 +71,10 @@ def steady_body_loglike(form, n_rings, has_break, min_factor, sigma, min_var, z,
         The distance rule's fixed inputs (``likelihood._rule_static``, ``_fused_static``).
     xn, wn, amat, x3, w3, x6, w6, x8, w8, y_grades, consts
         The limits kernel's rules and conventions (``steady._compiled_reads``).
+    wsf, wsi, need : ndarray (float, int64, int64 (2,))
+        Workspace for the large arrays (:func:`diskfield._rule_jit.carve`); ``need``
+        receives the float and int lengths that would hold them all (the caller grows the
+        workspace to that for its next call).
     """
     n_w = sigma.shape[0]
     n_g, n_r = z.shape
@@ -118,7 +122,9 @@ def steady_body_loglike(form, n_rings, has_break, min_factor, sigma, min_var, z,
         closed[g] = 1 if kind[g] == CLOSED else 0
     _, lw, phi, wi, gi, ll = _rule(form, n_rings, has_break, min_factor, level, scale, lo,
                                    hi, base, fixed, ring_u, offsets, grades, gl_x, gl_logw,
-                                   max_count, True, closed, prior, zbar, v, ln_k)
+                                   max_count, True, closed, prior, zbar, v, ln_k, wsf, wsi,
+                                   need)
+    of, oi = need[0], need[1]       # the workspace after the rule's node arrays
     n = phi.shape[0]
     if n == 0:
         return ll
@@ -129,7 +135,9 @@ def steady_body_loglike(form, n_rings, has_break, min_factor, sigma, min_var, z,
         if kind[g] == LIMITS:
             pos[g] = n_x
             n_x += 1
-    terms = lw.copy()
+    terms = carve(wsf, of, n)
+    of += n
+    terms[:] = lw
     if n_x > 0:
         n_rows = n_w * n_x
         zl = np.zeros((n_rows, n_l))
@@ -155,16 +163,21 @@ def steady_body_loglike(form, n_rings, has_break, min_factor, sigma, min_var, z,
         for i in range(n):
             if kind[gi[i]] == LIMITS:
                 n_read += 1
-        at = np.empty(n_read, np.int64)
-        ph_x = np.empty(n_read)
-        row = np.empty(n_read, np.int64)
+        at = carve(wsi, oi, n_read)
+        row = carve(wsi, oi + n_read, n_read)
+        oi += 2 * n_read
+        ph_x = carve(wsf, of, n_read)
+        of += n_read
         m = 0
         for i in range(n):
             if kind[gi[i]] == LIMITS:
                 at[m], ph_x[m], row[m] = i, phi[i], wi[i] * n_x + pos[gi[i]]
                 m += 1
         ln_f = body_spin_with_limits(ph_x, row, zl, vl, lm, hd, zb_r, v_r, lk_r, xn, wn, amat,
-                                     x3, w3, x6, w6, x8, w8, y_grades, consts)
+                                     x3, w3, x6, w6, x8, w8, y_grades, consts, wsf[of:],
+                                     wsi[oi:], need)
+        of += need[0]
+        oi += need[1]
         for m in range(n_read):
             terms[at[m]] += ln_f[m]
     for i in range(n):
@@ -176,6 +189,7 @@ def steady_body_loglike(form, n_rings, has_break, min_factor, sigma, min_var, z,
             sd = math.sqrt(vv)
             d = phi[i] - z[g, col]
             terms[i] += _logaddexp(log_ndtr(-d / sd), -d + 0.5 * vv + log_ndtr((d - vv) / sd))
+    need[0], need[1] = of, oi
     # ln sum exp over each (walker, body)'s run of nodes
     start = 0
     while start < n:

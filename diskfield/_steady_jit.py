@@ -17,7 +17,7 @@ import math
 import numpy as np
 from numba import njit
 
-from ._rule_jit import _insertion_sort
+from ._rule_jit import _insertion_sort, carve
 from ._special_jit import _X0 as _TABLE_LOW
 from ._special_jit import exp_ftz, log1p, log_ndtr, log_ndtr_ftz, log_vec
 
@@ -72,13 +72,14 @@ def _row_breaks(r, lz, lsd, n_lim, det, grades, inactive, pts):
 
 @njit(cache=True, error_model="numpy", fastmath={"contract"})
 def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat, x3, w3,
-                          x6, w6, x8, w8, grades, consts):
+                          x6, w6, x8, w8, grades, consts, wsf, wsi, need):
     """ln F(phi) at flat reads ``phi`` (N,) of rows ``row`` (N,); per-row data (R, ...).
 
     ``consts`` = (inactive, skip_above_peak, sub_range, negligible, diluted, gentle): the
     numerical conventions of :mod:`diskfield.steady`. The Y panels and q on them are built
     here; the cumulative table and its reads are :func:`table_reads` (which the age tables of
-    :mod:`diskfield.agedspin` share).
+    :mod:`diskfield.agedspin` share). ``wsf``, ``wsi``, ``need``: workspace for the large
+    arrays, as for :func:`diskfield._rule_jit._rule`.
     """
     inactive, skip_peak = consts[0], consts[1]
     n_rows, n_l = zl.shape
@@ -104,10 +105,13 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
             det[r, 5] = math.sqrt(v[r])
         det[r, 1], det[r, 2], det[r, 3] = zbar[r], v[r], ln_k[r]
     nb = grades.shape[0] * (n_l + 1) + 2
-    brk = np.empty((n_rows, nb))
+    n_brk = n_rows * nb
+    brk = carve(wsf, 0, n_brk).reshape((n_rows, nb))
     # q = Y + ln h(Y) at the nodes of the panels needed (-inf elsewhere), ln C at each row's
     # start; the table and its reads are table_reads'
-    q = np.full((n_rows, (nb - 1) * n), -np.inf)
+    n_q = n_rows * (nb - 1) * n
+    q = carve(wsf, n_brk, n_q).reshape((n_rows, (nb - 1) * n))
+    q[:] = -np.inf
     tail0 = np.empty(n_rows)
 
     # An inner function: numba inlines it, and the arrays it reads stay this function's own.
@@ -172,7 +176,9 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
             for j in range(n):
                 q[r, k * n + j] = ys[i * n + j] + acc[i * n + j]
         tail0[r] = y_a + log_h(y_a, r, True)
-    out = table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, consts)
+    out = table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, consts,
+                      wsf[n_brk + n_q:], wsi, need)
+    need[0] += n_brk + n_q
     # below a row's table the limits are all but certain to pass: ln F in closed form
     for i in range(phi.shape[0]):
         if phi[i] < brk[row[i], 0]:
@@ -181,7 +187,8 @@ def body_spin_with_limits(phi, row, zl, vl, lim, hd, zbar, v, ln_k, xn, wn, amat
 
 
 @njit(cache=True, fastmath={"contract"})
-def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, consts):
+def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, consts, wsf,
+                wsi, need):
     """``steady._cumulative_table`` then ``steady._read_table`` in one compiled pass: the
     cumulative table ln C of rows with breaks ``brk`` (R, B), node values ``q`` (R, (B - 1) n)
     and ln C at each row's start ``tail0`` (R,), read at flat points ``phi`` (N,) of rows
@@ -191,15 +198,18 @@ def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, c
     The table part of :func:`body_spin_with_limits`, which calls it with q computed from the
     limits, and of the age tables (``agedspin.body_spin_table``), with q from the age sums;
     held to the array code by ``tests/test_steady.py`` and ``tests/test_agedspin.py``.
-    ``consts`` as there.
+    ``consts`` as there; ``wsf``, ``wsi``, ``need`` workspace for the large arrays, as for
+    :func:`diskfield._rule_jit._rule`.
     """
     sub_range, negligible, diluted, gentle = consts[2], consts[3], consts[4], consts[5]
     n_rows, nb = brk.shape
     n = xn.shape[0]
-    coef = np.empty((n_rows, nb - 1, n))
+    n_p = n_rows * (nb - 1)
+    coef = carve(wsf, 0, n_p * n).reshape((n_rows, nb - 1, n))
+    read_spread = carve(wsf, n_p * n, n_p).reshape((n_rows, nb - 1))   # set for every panel
+    log_c = carve(wsf, n_p * (n + 1), n_rows * nb).reshape((n_rows, nb))
+    of = n_p * (n + 1) + n_rows * nb
     live = np.zeros((n_rows, nb - 1), np.bool_)
-    read_spread = np.zeros((n_rows, nb - 1))
-    log_c = np.empty((n_rows, nb))
     crude = np.empty(nb - 1)
     spread = np.empty(nb - 1)
     bound = np.empty(nb - 1)
@@ -309,12 +319,13 @@ def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, c
     n_ph = phi.shape[0]
     out = np.empty(n_ph)
     cf = coef.reshape(-1)
-    pick3 = np.empty(n_ph, np.int64)
-    pick6 = np.empty(n_ph, np.int64)
-    pick8 = np.empty(n_ph, np.int64)
-    base = np.empty(n_ph, np.uint64)
-    t_at = np.empty(n_ph)
-    th_at = np.empty(n_ph)
+    pick3 = carve(wsi, 0, n_ph)
+    pick6 = carve(wsi, n_ph, n_ph)
+    pick8 = carve(wsi, 2 * n_ph, n_ph)
+    base = carve(wsi, 3 * n_ph, n_ph)
+    t_at = carve(wsf, of, n_ph)
+    th_at = carve(wsf, of + n_ph, n_ph)
+    need[0], need[1] = of + 2 * n_ph, 4 * n_ph
     n3, n6, n8 = 0, 0, 0
     prev_r, p = -1, 0
     for i in range(n_ph):
@@ -348,7 +359,7 @@ def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, c
         if need > sub_range:
             out[i] = _logaddexp(log_c[r, p], log_partial(r, p, t, h, read_spread[r, p])) - p_i
             continue
-        base[i] = np.uint64((r * (nb - 1) + p) * n)
+        base[i] = (r * (nb - 1) + p) * n
         t_at[i], th_at[i] = t, t * h
         out[i] = log_c[r, p]            # the passes below add the partial and take phi off
         if need <= 1.5:
@@ -375,56 +386,64 @@ def _gentle_reads(pick, xg, wg, by_max, cf, base, t_at, th_at, phi, out, n):
     of q~ + ln w relative to their largest). Each read's panel coefficients are first copied
     from the flat ``cf`` (at ``base``) into rows by degree, so every later pass is a loop
     over contiguous arrays without branches, which vectorises (a read in the scalar pass
-    cost ~2.5x more)."""
-    m_n = pick.shape[0]
+    cost ~2.5x more). Reads go in chunks of ``_CHUNK``, so the scratch stays small."""
+    n_all = pick.shape[0]
     n_j = xg.shape[0]
-    if m_n == 0:
+    if n_all == 0:
         return
-    cs = np.empty((n, m_n))
-    ts = np.empty(m_n)
-    ths = np.empty(m_n)
-    lcs = np.empty(m_n)
-    phs = np.empty(m_n)
-    shift = np.empty(m_n)
-    acc = np.zeros(m_n)
-    hv = np.empty((n_j, m_n))
-    for m in range(m_n):
-        i = pick[m]
-        b = base[i]
-        for d in range(n):
-            cs[d, m] = cf[b + np.uint64(d)]
-        ts[m], ths[m], lcs[m], phs[m] = t_at[i], th_at[i], out[i], phi[i]
-    for j in range(n_j):
-        xj = xg[j]
-        # Horner's rule on the panel's monomial coefficients at s = t x_j
+    size = min(n_all, _CHUNK)
+    cs = np.empty((n, size))
+    ts = np.empty(size)
+    ths = np.empty(size)
+    lcs = np.empty(size)
+    phs = np.empty(size)
+    shift = np.empty(size)
+    acc = np.empty(size)
+    hv = np.empty((n_j, size))
+    for c0 in range(0, n_all, size):
+        m_n = min(size, n_all - c0)
         for m in range(m_n):
-            hv[j, m] = cs[n - 1, m]
-        for d in range(n - 2, -1, -1):
+            i = pick[c0 + m]
+            b = np.uint64(base[i])
+            for d in range(n):
+                cs[d, m] = cf[b + np.uint64(d)]
+            ts[m], ths[m], lcs[m], phs[m] = t_at[i], th_at[i], out[i], phi[i]
+            acc[m] = 0.0
+        for j in range(n_j):
+            xj = xg[j]
+            # Horner's rule on the panel's monomial coefficients at s = t x_j
             for m in range(m_n):
-                hv[j, m] = hv[j, m] * (ts[m] * xj) + cs[d, m]
-    if by_max:
+                hv[j, m] = cs[n - 1, m]
+            for d in range(n - 2, -1, -1):
+                for m in range(m_n):
+                    hv[j, m] = hv[j, m] * (ts[m] * xj) + cs[d, m]
+        if by_max:
+            for m in range(m_n):
+                shift[m] = -np.inf
+            for j in range(n_j):
+                lw = math.log(wg[j])
+                for m in range(m_n):
+                    hv[j, m] += lw
+                    shift[m] = max(shift[m], hv[j, m])
+            for j in range(n_j):
+                for m in range(m_n):
+                    acc[m] += exp_ftz(hv[j, m] - shift[m])
+        else:
+            for m in range(m_n):
+                shift[m] = cs[0, m]
+            for j in range(n_j):
+                wj = wg[j]
+                for m in range(m_n):
+                    acc[m] += exp_ftz(hv[j, m] - shift[m]) * wj
         for m in range(m_n):
-            shift[m] = -np.inf
-        for j in range(n_j):
-            lw = math.log(wg[j])
-            for m in range(m_n):
-                hv[j, m] += lw
-                shift[m] = max(shift[m], hv[j, m])
-        for j in range(n_j):
-            for m in range(m_n):
-                acc[m] += exp_ftz(hv[j, m] - shift[m])
-    else:
+            # ln(e^lc + th s e^shift) - phi, with the larger exponent factored out
+            lc, sh = lcs[m], shift[m]
+            top = max(lc, sh)
+            ts[m] = (top + log_vec(exp_ftz(lc - top) + (acc[m] * ths[m]) * exp_ftz(sh - top))
+                     - phs[m])
         for m in range(m_n):
-            shift[m] = cs[0, m]
-        for j in range(n_j):
-            wj = wg[j]
-            for m in range(m_n):
-                acc[m] += exp_ftz(hv[j, m] - shift[m]) * wj
-    for m in range(m_n):
-        # ln(e^lc + th s e^shift) - phi, with the larger exponent factored out
-        lc, sh = lcs[m], shift[m]
-        top = max(lc, sh)
-        ts[m] = (top + log_vec(exp_ftz(lc - top) + (acc[m] * ths[m]) * exp_ftz(sh - top))
-                 - phs[m])
-    for m in range(m_n):
-        out[pick[m]] = ts[m]
+            out[pick[c0 + m]] = ts[m]
+
+
+#: Reads per pass of :func:`_gentle_reads`.
+_CHUNK = 512

@@ -32,7 +32,7 @@ import numpy as np
 from scipy import special
 
 from . import quadrature as quad
-from . import steady
+from . import steady, workspace
 from .steady import _cumulative_table, _horner, _read_table
 
 __all__ = ["body_spin_table"]
@@ -129,10 +129,10 @@ def body_spin_table(phi, first, b, var, ages, g, n_nodes, records):
     kernel = steady._kernel()
     if kernel is not None:
         rules = steady.limits_rules(n_nodes)
-        out[wi, ki] = kernel.table_reads(np.ascontiguousarray(breaks), np.ascontiguousarray(q),
-                                         np.ascontiguousarray(tail0, dtype=float),
-                                         np.ascontiguousarray(phi[wi, ki]), wi.astype(np.int64),
-                                         *rules[:9], rules[10])
+        out[wi, ki] = workspace.call(
+            kernel.table_reads, np.ascontiguousarray(breaks), np.ascontiguousarray(q),
+            np.ascontiguousarray(tail0, dtype=float), np.ascontiguousarray(phi[wi, ki]),
+            wi.astype(np.int64), *rules[:9], rules[10])
         return out
     table = _cumulative_table(breaks, q, tail0, n_nodes)
     out[wi, ki] = _read_table(table, phi[wi, ki], wi)[0]

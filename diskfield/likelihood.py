@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import quadrature as quad
-from . import aged, steady
+from . import aged, steady, workspace
 from ._lkcommon import _detection_stats, _expand, _finite_support, load_kernel
 from .aged import _PLATEAU_SPREAD, _age_priors, _age_rule, _integrand_aged, log_factor_range
 from .errors import CompilationError, OptionError, PriorFileError, Problem
@@ -81,7 +81,8 @@ def compile_kernels() -> None:
     statics = (np.array([[1.0, 0.5]]), np.full((1, 2), 0.1), np.array([[True, False]]),
                np.array([[False, True]]), np.ones(1, np.int64), np.ones((1, 1), np.int64),
                np.ones(1, np.int64), *args[6:], np.zeros((1, 4)), *steady.limits_rules(5))
-    _body_kernel().steady_body_loglike(*args[:4], np.full(1, 0.1), _MIN_VAR, *statics)
+    workspace.call(_body_kernel().steady_body_loglike, *args[:4], np.full(1, 0.1), _MIN_VAR,
+                   *statics)
 
 
 #: Floor on a record's total log variance: a limit without stated error and without
@@ -364,8 +365,8 @@ class Model:
         if rows is None:
             return None
         sigma = np.ascontiguousarray(p["intrinsic_scatter"], dtype=float)
-        return _body_kernel().steady_body_loglike(*rows, MIN_RING_FACTOR, sigma, _MIN_VAR,
-                                                  *self._fused)
+        return workspace.call(_body_kernel().steady_body_loglike, *rows, MIN_RING_FACTOR,
+                              sigma, _MIN_VAR, *self._fused)
 
     def _setup(self, p):
         """Variances (W, G, n), detection statistics, age rule and distance breakpoints."""

@@ -27,6 +27,7 @@ import numpy as np
 from scipy import special
 
 from . import quadrature as quad
+from . import workspace
 from ._lkcommon import load_kernel
 from .recording import LN_SQRT_2PI, emg_logpdf, emg_logsf
 
@@ -165,8 +166,8 @@ def compile_kernels() -> None:
     _compiled_reads(np.array([1.0]), one, one, one, b,
                     _subset(b, var, stats, one) + (np.array([[True]]),), 5)
     rules = limits_rules(5)     # the age tables' reads (agedspin.body_spin_table)
-    _kernel().table_reads(np.array([[0.0, 1.0]]), np.zeros((1, 5)), np.zeros(1),
-                          np.array([0.5]), np.zeros(1, np.int64), *rules[:9], rules[10])
+    workspace.call(_kernel().table_reads, np.array([[0.0, 1.0]]), np.zeros((1, 5)),
+                   np.zeros(1), np.array([0.5]), np.zeros(1, np.int64), *rules[:9], rules[10])
 
 
 def _compiled_reads(phi, wi, gi, gx, b, args, n_nodes):
@@ -177,8 +178,8 @@ def _compiled_reads(phi, wi, gi, gx, b, args, n_nodes):
     pos[gx] = np.arange(len(gx))
     flat = (lambda a: np.ascontiguousarray(np.broadcast_to(a, (w, g) + a.shape[2:]).reshape(
         (w * g,) + a.shape[2:])))
-    return _kernel().body_spin_with_limits(
-        np.ascontiguousarray(phi, float), wi * g + pos[gi], flat(z[None]), flat(vl),
+    return workspace.call(
+        _kernel().body_spin_with_limits, np.ascontiguousarray(phi, float), wi * g + pos[gi], flat(z[None]), flat(vl),
         flat(lim[None]), flat(has_det), flat(np.where(has_det, zbar, 0.0)),
         flat(np.where(has_det, v, 1.0)), flat(np.where(has_det, ln_k, 0.0)),
         *limits_rules(n_nodes))
