@@ -754,3 +754,60 @@ def test_support_check_is_where_the_log_prior_is_finite(pset, profile):
     expected = np.isfinite(model._log_prior_product(theta))
     assert 0 < expected.sum() < len(theta)
     np.testing.assert_array_equal(model._in_support(theta), expected)
+
+
+def test_field_pass_equals_log_field_for_narrow_and_wide_rings():
+    """The vectorised field pass (``_rule_jit._field_nodes``: a ring's passes cover only the
+    run of sorted nodes within its cut) equals the scalar ``log_field`` node by node, for
+    rings far narrower than the node spacing, wide ones, gaps at the factor floor, and rings
+    whose run is empty (common practice, no source)."""
+    import diskfield.likelihood as lk
+    from diskfield.profiles.ring import MIN_RING_FACTOR
+
+    kernel = lk._rule_kernel()
+    if kernel is None:
+        pytest.skip("numba not importable")
+    from diskfield._rule_jit import _coefficients, _field_nodes, log_field
+
+    rng = np.random.default_rng(8)
+    x = np.sort(rng.uniform(0.3, 40.0, 400))
+    for amp1, w1, amp2, w2 in [(3.0, 1e-4, -0.99, 0.02), (0.5, 5.0, 8.0, 0.3),
+                               (1e-20, 0.1, -0.5, 1e-6), (2.0, 0.05, 0.0, 1.0)]:
+        form = np.array([[1.0, 1.3, 0.0, 0.0, amp1, 2.7, w1, amp2, x[200], w2]])
+        c = _coefficients(form, 0)
+        out, tmp, lx = np.empty(400), np.empty(400), np.empty(400)
+        _field_nodes(x, out, tmp, lx, 400, c, 2, False, MIN_RING_FACTOR)
+        want = np.array([log_field(r, c, 2, False, MIN_RING_FACTOR) for r in x])
+        np.testing.assert_allclose(out, want, rtol=0, atol=1e-13)
+        np.testing.assert_allclose(lx, np.log(x), rtol=1e-15)
+
+
+def test_workspace_reuse_gives_the_same_likelihood(pset):
+    """The one-call steady kernel gives the same per-body values with no workspace (every
+    large array allocated), a grown one, and one that is too short (part allocated); the
+    workspace grows once and is then reused (common practice, no source)."""
+    import diskfield.likelihood as lk
+    from diskfield import workspace
+    from diskfield.profiles.ring import MIN_RING_FACTOR
+
+    body = lk._body_kernel()
+    if body is None:
+        pytest.skip("numba not importable")
+    model = _demo_model("two-ring", pset)
+    rng = np.random.default_rng(4)
+    p = model.params(np.column_stack([pr.sample(rng, 24) for pr in model.priors]))
+    rows = lk._form_rows(model.profile.power_law_form(p), 24)
+    args = (*rows, MIN_RING_FACTOR, np.ascontiguousarray(p["intrinsic_scatter"]), lk._MIN_VAR,
+            *model._fused)
+    need = np.zeros(2, np.int64)
+    fresh = body.steady_body_loglike(*args, np.empty(0), np.empty(0, np.int64), need)
+    assert need.min() > 0
+    short = body.steady_body_loglike(*args, np.empty(need[0] // 2),
+                                     np.empty(need[1] // 2, np.int64), np.zeros(2, np.int64))
+    first = workspace.call(body.steady_body_loglike, *args)
+    grown = workspace.size()
+    assert grown[0] >= need[0] and grown[1] >= need[1]
+    again = workspace.call(body.steady_body_loglike, *args)
+    assert workspace.size() == grown
+    for got in (short, first, again):
+        np.testing.assert_array_equal(got, fresh)
