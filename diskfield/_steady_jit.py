@@ -1,12 +1,15 @@
 """Compiled (numba) form of :func:`diskfield.steady.body_spin_with_limits`.
 
 The same rule as the array code in :mod:`diskfield.steady`, node for node (breakpoints, panels
-skipped, sub-panels, reads); only the order of floating-point additions differs, so the two
-agree to ~1e-12 (tested). The array code builds dozens of temporary (rows x panels x nodes)
-arrays per call; here one pass per (walker, body) row builds its table and a second pass reads
-it, which makes the limits part several times faster (``benchmarks/bench_likelihood.py``).
-The table keeps each panel's monomial coefficients of q's interpolant (not its node values),
-so a read costs only its own short Gauss rule.
+skipped, sub-panels, reads); only the order of floating-point operations differs (and fused
+multiply-adds: the kernels compile with ``fastmath={"contract"}``), so the two agree to
+~1e-12 (tested). The array code builds dozens of temporary (rows x panels x nodes) arrays per
+call; here one pass per (walker, body) row builds its table and the reads follow, which makes
+the limits part several times faster (``benchmarks/bench_likelihood.py``). The table keeps
+each panel's monomial coefficients of q's interpolant (not its node values), so a read costs
+only its own short Gauss rule; reads of one sub-panel or fewer are evaluated in passes over
+the reads that vectorise (:func:`_gentle_reads`). Large arrays come from the caller's
+workspace (:mod:`diskfield.workspace`).
 
 ln Phi is read from the table of :mod:`diskfield._special_jit` (numba has no ``scipy.special``).
 """
