@@ -286,6 +286,26 @@ def test_dissipating_envelope_log_stays_finite_deep_in_the_residual():
     np.testing.assert_allclose(out, np.log(1e-3), rtol=1e-12)
 
 
+def test_dissipating_envelope_equals_its_form_in_logs():
+    """The linear-space evaluation equals ln[f_r + (1 - f_r) sigma(x) / sigma(x0)] taken in
+    logs through scipy.special.log_expit, across edges from 1e-4 to 10 Myr and residuals
+    from 1e-12 to 1 (derived from the envelope's definition; scipy as the reference)."""
+    from scipy.special import log_expit
+
+    rng = np.random.default_rng(12)
+    t = np.concatenate([[0.0], np.geomspace(1e-4, 1e3, 300)])[None, :]
+    env = get_envelope("dissipating")
+    for _ in range(40):
+        t_d, dt = rng.uniform(0.0, 10.0), 10 ** rng.uniform(-4, 1)
+        f_r = 1.0 if rng.uniform() < 0.1 else 10 ** rng.uniform(-12, 0)
+        got = env.log_factor(t, _p(dissipation_time=t_d, dissipation_edge=dt,
+                                   residual_fraction=f_r))
+        log_s = log_expit((t_d - t) / dt) - log_expit(t_d / dt)
+        with np.errstate(divide="ignore"):
+            want = np.logaddexp(np.log(f_r), np.log1p(-f_r) + log_s)
+        np.testing.assert_allclose(got, want, rtol=0, atol=1e-13)
+
+
 @pytest.mark.parametrize("name", ["dissipating", "viscous"])
 def test_times_before_cai_formation_count_as_zero(name):
     env = get_envelope(name)
