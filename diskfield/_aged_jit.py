@@ -45,6 +45,17 @@ def records_sum(y, wi, z, var, is_lim, lf, lw, start, n_q):
     n_p = y.shape[0]
     n_m = z.shape[0]
     out = np.zeros(n_p)
+    # per (walker, record), once: the limits' -1/sd, the detections' -1/(2 V) and ln norm
+    n_w = var.shape[0]
+    k_s = np.empty((n_w, n_m))
+    k_c = np.empty((n_w, n_m))
+    k_norm = np.empty((n_w, n_m))
+    for w in range(n_w):
+        for j in range(n_m):
+            v = var[w, j]
+            k_s[w, j] = -1.0 / math.sqrt(v)
+            k_c[w, j] = -0.5 / v
+            k_norm[w, j] = -0.5 * math.log(v) - _LN_SQRT_2PI
     for p in range(n_p):
         w = wi[p]
         acc = 0.0
@@ -56,7 +67,7 @@ def records_sum(y, wi, z, var, is_lim, lf, lw, start, n_q):
             o = np.uint64(start[w, j])
             tot = 0.0
             if is_lim[j]:
-                s = -1.0 / math.sqrt(v)
+                s = k_s[w, j]
                 for q in range(n):
                     tot += exp_ftz(lw[o + q] + log_ndtr_ftz((y[p] + lf[o + q] - z[j]) * s))
                 if tot >= _LINEAR_FLOOR:
@@ -75,11 +86,11 @@ def records_sum(y, wi, z, var, is_lim, lf, lw, start, n_q):
                                     - top)
                 acc += math.log(tot) + top
                 continue
-            c = -0.5 / v
+            c = k_c[w, j]
             for q in range(n):
                 d = y[p] + lf[o + q] - z[j]
                 tot += exp_ftz(c * d * d + lw[o + q])
-            norm = -0.5 * math.log(v) - _LN_SQRT_2PI
+            norm = k_norm[w, j]
             if tot >= _LINEAR_FLOOR:
                 acc += math.log(tot) + norm
                 continue
