@@ -274,3 +274,58 @@ def finish_rule(lw, lf, row, n_rows):
         mean[rr], var[rr], top_lf[rr], low_lf[rr] = m, sq, hi_v, lo_v
         s = e
     return mean, var, top_lf, low_lf
+
+
+@njit(cache=True)
+def tame(q, n, amat, check, w):
+    """:func:`diskfield.agedspin._tame` compiled, in place on ``q`` (R, (B - 1) n): a live
+    panel (finite at its first or last node) whose interpolant at the points ``check`` leaves
+    its node values' range by more than 1 nat + 10 % of that range, or that has a node value
+    that is not finite, takes the log of its Gauss mean of e^q (weights ``w``) at every
+    node. ``amat`` is the nodes' monomial interpolation matrix. The same panels and values as
+    the array code, up to the order of its matrix product's additions (tested)."""
+    n_r, m = q.shape
+    qf = np.empty(n)
+    cf = np.empty(n)
+    for i in range(n_r):
+        for b in range(0, m - n + 1, n):
+            if not (np.isfinite(q[i, b]) or np.isfinite(q[i, b + n - 1])):
+                continue
+            finite = True
+            for j in range(n):
+                v = q[i, b + j]
+                if np.isfinite(v):
+                    qf[j] = v
+                else:
+                    qf[j] = 0.0
+                    finite = False
+            top, low = qf[0], qf[0]
+            for j in range(1, n):
+                top = max(top, qf[j])
+                low = min(low, qf[j])
+            for a in range(n):
+                c = 0.0
+                for j in range(n):
+                    c += qf[j] * amat[a, j]
+                cf[a] = c
+            slack = 1.0 + 0.1 * (top - low)
+            wild = not finite
+            for x in check:
+                acc = cf[n - 1] * x + cf[n - 2]
+                for j in range(n - 3, -1, -1):
+                    acc = acc * x + cf[j]
+                if acc > top + slack or acc < low - slack:
+                    wild = True
+            if not wild:
+                continue
+            mx = q[i, b]
+            for j in range(1, n):
+                v = q[i, b + j]
+                mx = v if (v != v or v > mx) else mx       # np.max: NaN wins
+            s = 0.0
+            for j in range(n):
+                s += math.exp(q[i, b + j] - mx) * w[j]
+            mean = math.log(s) + mx if not s == 0.0 else -np.inf
+            for j in range(n):
+                q[i, b + j] = mean
+    return q

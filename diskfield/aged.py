@@ -475,6 +475,11 @@ def compile_kernels() -> None:
                                                 np.ones((1, 1)), np.ones((1, 1), int),
                                                 np.zeros((1, 1)), np.ones((1, 1)), x, np.log(wx))
     kernel.finish_rule(lw, np.zeros(len(t)), row, 1)
+    from . import steady
+    from .agedspin import _check_points
+
+    _, w = quad.gauss_legendre_unit(5)        # the age tables' safety net (agedspin._tame)
+    kernel.tame(np.zeros((1, 5)), 5, steady.limits_rules(5)[2], _check_points(5), w)
 
 
 def _records_at(b, var, ages, g):

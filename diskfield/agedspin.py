@@ -28,11 +28,14 @@ quadratic q (exact for a Gaussian tail or a linear one).
 """
 from __future__ import annotations
 
+from functools import lru_cache
+
 import numpy as np
 from scipy import special
 
 from . import quadrature as quad
 from . import steady, workspace
+from .aged import _kernel as aged_kernels
 from .steady import _cumulative_table, _horner, _read_table
 
 __all__ = ["body_spin_table"]
@@ -121,7 +124,13 @@ def body_spin_table(phi, first, b, var, ages, g, n_nodes, records):
     rw, _ = np.nonzero(need)
     q = np.full(y.shape, -np.inf)
     q[need] = y[need] + records(y[need], rw)
-    q = _tame(q, n_nodes)
+    aged_kernel = aged_kernels()
+    if aged_kernel is not None:
+        _, w = quad.gauss_legendre_unit(n_nodes)
+        aged_kernel.tame(q, n_nodes, steady.limits_rules(n_nodes)[2], _check_points(n_nodes),
+                         np.ascontiguousarray(w))
+    else:
+        q = _tame(q, n_nodes)
     tail0 = _tail_start(y_a, narrow, records)
     wi, ki = np.nonzero(first)
     out = np.full(phi.shape, -np.inf)
@@ -153,6 +162,14 @@ def _distinct(breaks):
     return np.where(np.arange(out.shape[1]) < n_keep[:, None], out, last)
 
 
+@lru_cache(maxsize=8)
+def _check_points(n_nodes):
+    """Where :func:`_tame` checks a panel's interpolant: both ends and the midpoints between
+    its Gauss–Legendre nodes, on [0, 1] (cached: do not modify)."""
+    x, _ = quad.gauss_legendre_unit(n_nodes)
+    return np.concatenate([[0.0], 0.5 * (x[:-1] + x[1:]), [1.0]])
+
+
 def _tame(q, n_nodes):
     """q at the table's nodes (R, (B - 1) n), with each panel whose interpolant is not
     trustworthy replaced by a constant: the log of the panel's Gauss mean of e^q.
@@ -176,8 +193,8 @@ def _tame(q, n_nodes):
     finite = np.isfinite(ql).all(axis=-1)
     qf = np.where(np.isfinite(ql), ql, 0.0)
     coef = qf @ quad.monomial_interpolation(n_nodes).T
-    x, w = quad.gauss_legendre_unit(n_nodes)
-    check = np.concatenate([[0.0], 0.5 * (x[:-1] + x[1:]), [1.0]])
+    _, w = quad.gauss_legendre_unit(n_nodes)
+    check = _check_points(n_nodes)
     vals = _horner(coef, np.broadcast_to(check, (len(ql), len(check))))
     top, low = qf.max(axis=-1), qf.min(axis=-1)
     slack = 1.0 + 0.1 * (top - low)

@@ -268,6 +268,48 @@ def test_wild_panels_are_replaced_by_their_gauss_mean_and_smooth_ones_kept():
     assert np.all(out[0, 3 * n:] == -np.inf)                        # panels not needed
 
 
+def test_compiled_tame_replaces_the_same_panels_as_the_array_code():
+    """_aged_jit.tame (in place) against agedspin._tame on random tables: smooth panels,
+    staircases, panels with -inf or NaN nodes, and panels not needed (common practice, no
+    source)."""
+    from diskfield import quadrature as quad
+    from diskfield import steady
+    from diskfield.aged import _kernel
+    from diskfield.agedspin import _check_points, _tame
+
+    kernel = _kernel()
+    if kernel is None:
+        pytest.skip("numba not importable")
+    rng = np.random.default_rng(17)
+    n = 5
+    x, w = quad.gauss_legendre_unit(n)
+    rows = []
+    for _ in range(400):
+        kind = rng.integers(6)
+        if kind == 0:
+            panel = -0.5 * ((x - rng.uniform(-1, 2)) * rng.uniform(0.1, 30)) ** 2
+        elif kind == 1:
+            panel = np.where(x < rng.uniform(), 0.0, -rng.uniform(1, 1e6))     # a step
+        elif kind == 2:
+            panel = rng.normal(0, 10 ** rng.uniform(-2, 2), n)
+        elif kind == 3:
+            panel = np.full(n, -np.inf)
+        elif kind == 4:
+            panel = rng.normal(0, 1, n)
+            panel[rng.integers(1, n - 1)] = -np.inf
+        else:
+            panel = rng.normal(0, 1, n)
+            panel[rng.integers(n)] = np.nan
+        rows.append(panel)
+    q = np.concatenate(rows).reshape(40, 10 * n)
+    want = _tame(q.copy(), n)
+    got = kernel.tame(q.copy(), n, steady.limits_rules(n)[2], _check_points(n), w)
+    np.testing.assert_array_equal(np.isnan(got), np.isnan(want))
+    ok = ~np.isnan(want)
+    np.testing.assert_allclose(got[ok], want[ok], rtol=1e-13, atol=1e-13)
+    assert not np.array_equal(want, q)              # some panels were replaced
+
+
 @pytest.mark.parametrize("profile", ["smooth", "two-ring"])
 def test_a_constant_envelope_gives_the_steady_likelihood(profile):
     """With residual_fraction = 1 the dissipating envelope is T = 1 at all times, so the
