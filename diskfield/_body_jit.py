@@ -24,14 +24,17 @@ import numpy as np
 from numba import njit
 
 from ._special_jit import log_ndtr
-from ._rule_jit import _rule, carve
+from ._rule_jit import EMG_BODY, _rule, carve
+from ._rule_jit import NO_SPIN as _RULE_NO_SPIN
+from ._rule_jit import PER_RECORD as _RULE_PER_RECORD
 from ._steady_jit import body_spin_with_limits
 
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 
-#: Body kinds (``kind`` argument): detections only (closed form in the rule's pass), upper
-#: limits with the shared spin integral, a single upper limit.
-CLOSED, LIMITS, LONE_LIMIT = 0, 1, 2
+#: Body kinds (``kind`` argument): with the body-shared spin, detections only (closed form in
+#: the rule's pass), upper limits with the shared spin integral, a single upper limit; for
+#: the other spin modes, every body in the rule's pass: no spin, a spin per record.
+CLOSED, LIMITS, LONE_LIMIT, NO_SPIN, PER_RECORD = 0, 1, 2, 3, 4
 
 
 @njit(cache=True)
@@ -62,7 +65,8 @@ def steady_body_loglike(form, n_rings, has_break, min_factor, sigma, min_var, z,
     det, lim : ndarray of bool (G, n)
         Detections and upper limits (padding: neither).
     kind : ndarray of int (G,)
-        :data:`CLOSED`, :data:`LIMITS` or :data:`LONE_LIMIT`.
+        :data:`CLOSED`, :data:`LIMITS` or :data:`LONE_LIMIT` (body-shared spin), or
+        :data:`NO_SPIN` or :data:`PER_RECORD` (the other spin modes, every body).
     lim_order : ndarray of int (G, L)
         Each body's limit columns first, in record order (``steady._subset``'s compaction).
     n_lim : ndarray of int (G,)
@@ -102,6 +106,15 @@ def steady_body_loglike(form, n_rings, has_break, min_factor, sigma, min_var, z,
                 elif lim[g, j]:
                     zlim = min(zlim, z[g, j])
                     vlim = min(vlim, vj)
+            if kind[g] == PER_RECORD and n_det > 0:
+                # each record its own spin: the integrand is sharp around the highest
+                # detection, as wide as the narrowest (``Model._level``)
+                top_z, min_v = -np.inf, np.inf
+                for j in range(n_r):
+                    if det[g, j]:
+                        top_z = max(top_z, z[g, j])
+                        min_v = min(min_v, var[w, g, j])
+                level[w, g], scale[w, g] = top_z, math.sqrt(min_v)
             if n_det > 0:
                 vv = 1.0 / prec
                 zb = pz * vv
@@ -113,17 +126,23 @@ def steady_body_loglike(form, n_rings, has_break, min_factor, sigma, min_var, z,
                 zbar[w, g], v[w, g], has[w, g] = zb, vv, True
                 ln_k[w, g] = (-0.5 * log_var - _LN_SQRT_2PI * n_det + 0.5 * math.log(vv)
                               + _LN_SQRT_2PI - 0.5 * rss)
-                level[w, g], scale[w, g] = zb, math.sqrt(vv)
+                if kind[g] != PER_RECORD:
+                    level[w, g], scale[w, g] = zb, math.sqrt(vv)
             else:
                 level[w, g] = zlim
                 scale[w, g] = math.sqrt(vlim) if vlim < np.inf else 1.0
     closed = np.zeros(n_g, np.int64)
     for g in range(n_g):
-        closed[g] = 1 if kind[g] == CLOSED else 0
+        if kind[g] == CLOSED:
+            closed[g] = EMG_BODY
+        elif kind[g] == NO_SPIN:
+            closed[g] = _RULE_NO_SPIN
+        elif kind[g] == PER_RECORD:
+            closed[g] = _RULE_PER_RECORD
     _, lw, phi, wi, gi, ll = _rule(form, n_rings, has_break, min_factor, level, scale, lo,
                                    hi, base, fixed, ring_u, offsets, grades, gl_x, gl_logw,
-                                   max_count, True, closed, prior, zbar, v, ln_k, wsf, wsi,
-                                   need)
+                                   max_count, True, closed, prior, zbar, v, ln_k, z, var, det,
+                                   lim, wsf, wsi, need)
     of, oi = need[0], need[1]       # the workspace after the rule's node arrays
     n = phi.shape[0]
     if n == 0:

@@ -25,6 +25,13 @@ from ._special_jit import _X0 as _TABLE_LOW
 from ._special_jit import exp_ftz, log1p, log_ndtr, log_ndtr_ftz, log_vec
 
 
+#: Integrands of the bodies integrated in the rule's pass (``closed`` argument of
+#: :func:`_rule`): the body-shared spin's EMG of the detections' Gaussian, no spin (the
+#: detections' Gaussian times each limit's normal CDF), a spin per record (each record's
+#: EMG density or survival function). 0: the body's nodes are returned instead.
+EMG_BODY, NO_SPIN, PER_RECORD = 1, 2, 3
+_LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
+
 #: ln(1e-17): a ring factor 1 + x with |x| below 1e-17 leaves ln R unchanged to double
 #: precision (ln(1 + x) = x - ..., and ln R is O(1)); its exp is not taken.
 _LN_TINY = math.log(1e-17)
@@ -271,6 +278,98 @@ def _tail_width(centre, level, scale, c, n_rings, has_break, mf):
                min(1.0 / max(g1, 1e-12), 1.0 / math.sqrt(max(g2, 1e-24))))
 
 
+@njit(cache=True, error_model="numpy", fastmath={"contract"}, inline="always")
+def _emg_terms(phs, lws, terms, k_t, zb, vv, lk):
+    """terms = ln weight + ln K EMG(ph - zbar; V) at the body's nodes (the body-shared spin,
+    detections only): ln K - (ph - zbar) + V/2 + ln Phi((ph - zbar - V) / sqrt V)
+    (``recording.emg_logpdf``); ln Phi from the table, its far lower tail (x < -40, rare)
+    again through the asymptotic series."""
+    lk += 0.5 * vv            # the EMG's V / 2
+    zb += vv                  # its argument (d - V) / sqrt V, with d = ph - zbar
+    isd = 1.0 / math.sqrt(vv)
+    # the lowest argument in its own pass: a min inside the loop below stopped its
+    # vectorisation (2x slower)
+    low = np.inf
+    for k in range(k_t):
+        low = min(low, (phs[k] - zb) * isd)
+    for k in range(k_t):
+        arg = (phs[k] - zb) * isd
+        terms[k] = lws[k] + lk - (phs[k] - zb + vv) + log_ndtr_ftz(arg)
+    if low < _TABLE_LOW:
+        for k in range(k_t):
+            arg = (phs[k] - zb) * isd
+            if arg < _TABLE_LOW:
+                terms[k] = lws[k] + lk - (phs[k] - zb + vv) + log_ndtr(arg)
+
+
+@njit(cache=True, error_model="numpy", fastmath={"contract"}, inline="always")
+def _record_terms(per_record, phs, lws, terms, rec, scratch, k_t, zb, vv, lk, rz, rvar, rdet,
+                  rlim, w, g):
+    """terms = ln weight + ln p(body's records | ln R = ph) at the body's nodes, without
+    spin (``steady.no_spin``: the detections' Gaussian, closed form, times each limit's
+    Phi((z - ph) / sd)) or with a spin per record (``steady.record_spin``: each detection's
+    EMG density, each limit's EMG survival function). One pass per record that vectorises
+    (ln Phi from the table), and the far lower tail (argument < -40) again through the
+    asymptotic series; ``rec`` and ``scratch`` are scratch of the nodes' length."""
+    lo_ph, hi_ph = np.inf, -np.inf
+    for k in range(k_t):
+        lo_ph = min(lo_ph, phs[k])
+    for k in range(k_t):
+        hi_ph = max(hi_ph, phs[k])
+    has_det = False
+    for j in range(rz.shape[1]):
+        has_det = has_det or rdet[g, j]
+    if per_record or not has_det:
+        for k in range(k_t):
+            terms[k] = lws[k]
+    else:
+        c = lk - 0.5 * math.log(vv) - _LN_SQRT_2PI
+        for k in range(k_t):
+            terms[k] = lws[k] + (c - 0.5 * (phs[k] - zb) ** 2 / vv)
+    for j in range(rz.shape[1]):
+        z, var = rz[g, j], rvar[w, g, j]
+        is_det, is_lim = rdet[g, j], rlim[g, j]
+        if not (is_lim or (per_record and is_det)):
+            continue
+        isd = 1.0 / math.sqrt(var)
+        if not per_record:
+            # Phi((z - ph) / sd), lowest at the highest node
+            for k in range(k_t):
+                rec[k] = log_ndtr_ftz((z - phs[k]) * isd)
+            if (z - hi_ph) * isd < _TABLE_LOW:
+                for k in range(k_t):
+                    x = (z - phs[k]) * isd
+                    if x < _TABLE_LOW:
+                        rec[k] = log_ndtr(x)
+        else:
+            # EMG density: -d + V/2 + ln Phi((d - V) / sd), d = ph - z; its survival function
+            # ln[Phi(-d / sd) + e^(-d + V/2) Phi((d - V) / sd)] (recording.emg_logsf)
+            for k in range(k_t):
+                rec[k] = -(phs[k] - z) + 0.5 * var + log_ndtr_ftz((phs[k] - z - var) * isd)
+            if is_lim:
+                for k in range(k_t):
+                    a = log_ndtr_ftz((z - phs[k]) * isd)
+                    b = rec[k]
+                    top = max(a, b)
+                    scratch[k] = top + log_vec(1.0 + exp_ftz(min(a, b) - top))
+                for k in range(k_t):
+                    rec[k] = scratch[k]
+            far_d = (lo_ph - z - var) * isd < _TABLE_LOW
+            if far_d or (is_lim and (z - hi_ph) * isd < _TABLE_LOW):
+                for k in range(k_t):
+                    x_d = (phs[k] - z - var) * isd
+                    x_s = (z - phs[k]) * isd
+                    if x_d < _TABLE_LOW or (is_lim and x_s < _TABLE_LOW):
+                        b = -(phs[k] - z) + 0.5 * var + log_ndtr(x_d)
+                        if is_lim:
+                            a = log_ndtr(x_s)
+                            top = max(a, b)
+                            b = top + log1p(math.exp(min(a, b) - top)) if top > -np.inf else top
+                        rec[k] = b
+        for k in range(k_t):
+            terms[k] += rec[k]
+
+
 @njit(cache=True, fastmath={"contract"})
 def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixed,
                  ring_u, offsets, grades, gl_x, gl_logw, max_count):
@@ -287,18 +386,20 @@ def steady_nodes(form, n_rings, has_break, min_factor, level, scale, lo, hi, bas
     n_w, n_g = level.shape
     none = np.zeros(n_g, np.int64)
     empty = np.zeros((n_w, n_g))
+    no_rec = np.zeros((n_g, 0), np.bool_)
     r, lw, phi, wi, gi, _ = _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi,
                                   base, fixed, ring_u, offsets, grades, gl_x, gl_logw,
                                   max_count, False, none, np.zeros((n_g, 4)), empty, empty,
-                                  empty, np.empty(0), np.empty(0, np.int64),
+                                  empty, np.zeros((n_g, 0)), np.zeros((n_w, n_g, 0)), no_rec,
+                                  no_rec, np.empty(0), np.empty(0, np.int64),
                                   np.zeros(2, np.int64))
     return r, lw, phi, wi, gi
 
 
 @njit(cache=True, error_model="numpy", fastmath={"contract"})
 def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixed, ring_u,
-          offsets, grades, gl_x, gl_logw, max_count, fused, closed, prior, zbar, v, ln_k, wsf,
-          wsi, need):
+          offsets, grades, gl_x, gl_logw, max_count, fused, closed, prior, zbar, v, ln_k, rz,
+          rvar, rdet, rlim, wsf, wsi, need):
     """The distance rule, one pass per (walker, body); with ``fused`` the closed bodies'
     integrals too (the driver :func:`diskfield._body_jit.steady_body_loglike` calls it so).
 
@@ -326,13 +427,17 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
         density x K EMG(ln R - zbar; V), in logs (ll); every other body's nodes are returned
         flat with ln weight + ln prior density in place of the ln weight.
     closed : ndarray of int (G,)
-        1 for the bodies integrated here (body-shared spin, detections only).
+        The integrand of each body integrated here (:data:`EMG_BODY`, :data:`NO_SPIN`,
+        :data:`PER_RECORD`), 0 for the others.
     prior : ndarray (G, 4)
         Each body's distance prior as ln p(r) = c - k ln r - (r - mu)^2 s^2 / 2, rows
         ``[c, k, mu, s]`` (``likelihood._prior_form``; valid inside the support, where
         every node lies).
     zbar, v, ln_k : ndarray (W, G)
         Detections' precision-weighted mean, variance and ln K (closed bodies).
+    rz, rvar, rdet, rlim : ndarray (G, n), (W, G, n), (G, n), (G, n)
+        Records' corrected ln values, total log variances, detection and limit masks (the
+        :data:`NO_SPIN` and :data:`PER_RECORD` integrands; may have n = 0 otherwise).
     wsf, wsi, need : ndarray (float, int64, int64 (2,))
         Workspace for the returned node arrays (:func:`carve`); ``need`` receives the
         float and int lengths they take.
@@ -541,7 +646,8 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
                 for k in range(k_t):
                     dx = (xs[k] - p_mu) * p_s
                     lws[k] += p_c - 0.5 * dx * dx - p_k * lxs[k]
-            if not (fused and closed[g] == 1):
+            code = closed[g] if fused else 0
+            if code == 0:
                 # one loop per array, at an unsigned offset: they vectorise
                 at = np.uint64(pos)
                 for k in range(np.uint64(k_t)):
@@ -555,26 +661,11 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
                     gi_out[at + k] = g
                 pos += k_t
                 continue
-            # K EMG(ph - zbar; V) = ln K - (ph - zbar) + V/2 + ln Phi((ph - zbar - V) / sqrt V)
-            # (recording.emg_logpdf); ln Phi from the table, its far lower tail (x < -40,
-            # rare) again through the asymptotic series
-            zb, vv, lk = zbar[w, g], v[w, g], ln_k[w, g]
-            lk += 0.5 * vv            # the EMG's V / 2
-            zb += vv                  # its argument (d - V) / sqrt V, with d = ph - zbar
-            isd = 1.0 / math.sqrt(vv)
-            # the lowest argument in its own pass: a min inside the loop below stopped its
-            # vectorisation (2x slower)
-            low = np.inf
-            for k in range(k_t):
-                low = min(low, (phs[k] - zb) * isd)
-            for k in range(k_t):
-                arg = (phs[k] - zb) * isd
-                terms[k] = lws[k] + lk - (phs[k] - zb + vv) + log_ndtr_ftz(arg)
-            if low < _TABLE_LOW:
-                for k in range(k_t):
-                    arg = (phs[k] - zb) * isd
-                    if arg < _TABLE_LOW:
-                        terms[k] = lws[k] + lk - (phs[k] - zb + vv) + log_ndtr(arg)
+            if code == EMG_BODY:
+                _emg_terms(phs, lws, terms, k_t, zbar[w, g], v[w, g], ln_k[w, g])
+            else:
+                _record_terms(code == PER_RECORD, phs, lws, terms, tmp, lxs, k_t, zbar[w, g],
+                              v[w, g], ln_k[w, g], rz, rvar, rdet, rlim, w, g)
             top = -np.inf
             for k in range(k_t):
                 top = max(top, terms[k])

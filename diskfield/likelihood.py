@@ -350,13 +350,14 @@ class Model:
         return out
 
     def _fused_loglike(self, p):
-        """Steady envelope, body-shared spin: the whole per-body log-likelihood (W, G) in one
-        compiled call (:func:`diskfield._body_jit.steady_body_loglike`): variances, the
-        detections' Gaussian, the distance rule with the closed-form bodies integrated in
-        its pass, the bodies with upper limits on the nodes it returns, the sums. The same
-        rule, integrands and sums as :meth:`_steady_terms` (tested equal to ~1e-12). None
-        when it does not apply (no power-law form, numba missing, spin not shared, an
-        obliquity prior, a distance prior of another form)."""
+        """Steady envelope: the whole per-body log-likelihood (W, G) in one compiled call
+        (:func:`diskfield._body_jit.steady_body_loglike`): variances, the detections'
+        Gaussian, the distance rule with the closed-form bodies integrated in its pass (with
+        spin "none" or "record", every body), the bodies with upper limits on the nodes it
+        returns (body-shared spin), the sums. The same rule, integrands and sums as
+        :meth:`_steady_terms` (tested equal to ~1e-12). None when it does not apply (no
+        power-law form, numba missing, an obliquity prior with a spin, a distance prior of
+        another form)."""
         if self._fused is None or self.profile.power_law_form is None or _body_kernel() is None:
             return None
         from .profiles.ring import MIN_RING_FACTOR
@@ -711,21 +712,25 @@ def _form_rows(form, n_walkers):
 
 def _fused_static(b, spin, obliquity, settings, rule_static):
     """The one-call steady kernel's fixed inputs (``_body_jit.steady_body_loglike`` after
-    ``min_var``), or None when it does not apply (another spin mode, an obliquity prior, a
-    distance prior without the closed form of :func:`_prior_form`).
+    ``min_var``), or None when it does not apply (an obliquity prior, a distance prior
+    without the closed form of :func:`_prior_form`).
 
-    Each body's kind (detections only: closed form in the rule's pass; upper limits with
-    the shared spin integral; a lone upper limit) and its limit columns first, in record
-    order, padded to the most limits of a body that needs the spin integral (the limits
-    kernel's breaks depend on that width: the same as ``steady._subset``)."""
-    if spin != "body" or obliquity is not None:
+    Each body's kind (body-shared spin: detections only, closed form in the rule's pass;
+    upper limits with the shared spin integral; a lone upper limit. Spin "none" or
+    "record": every body in the rule's pass, with that mode's integrand) and its limit
+    columns first, in record order, padded to the most limits of a body that needs the spin
+    integral (the limits kernel's breaks depend on that width: the same as
+    ``steady._subset``)."""
+    if obliquity is not None and spin != "none":    # without spin the obliquity plays no part
         return None
     rows = [_prior_form(prior) for prior in b.priors]
     if any(row is None for row in rows):
         return None
-    from ._body_jit import CLOSED, LIMITS, LONE_LIMIT
+    from ._body_jit import CLOSED, LIMITS, LONE_LIMIT, NO_SPIN, PER_RECORD
 
     kind = np.where(b.needs_x, LIMITS, np.where(b.lone_limit, LONE_LIMIT, CLOSED))
+    if spin != "body":
+        kind = np.full(len(kind), NO_SPIN if spin == "none" else PER_RECORD)
     n_lim = b.lim.sum(axis=1)
     width = max(int(n_lim[b.needs_x].max()) if b.needs_x.any() else 1, 1)
     order = np.argsort(~b.lim, axis=1, kind="stable")[:, :width]

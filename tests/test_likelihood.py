@@ -505,13 +505,31 @@ def test_fused_rule_equals_the_rule_and_integrands_apart(pset, profile):
     """The fused kernel (closed-form bodies integrated in the rule's pass) gives the per-body
     log-likelihoods of the compiled rule's nodes with the array integrands and sums, to
     round-off (common practice, no source: two implementations held equal)."""
+    _fused_against_apart(pset, profile, "body")
+
+
+@pytest.mark.parametrize("profile", ["smooth", "two-ring", "accretion"])
+@pytest.mark.parametrize("spin", ["none", "record"])
+def test_fused_kernel_follows_the_array_integrands_without_and_per_record_spin(
+        pset, profile, spin):
+    """Spin "none" and "record" in the one-call kernel (every body integrated in the rule's
+    pass: the detections' Gaussian times each limit's Phi, or each record's EMG density or
+    survival function, ln Phi from the table) against the array integrands of
+    ``steady.no_spin`` / ``steady.record_spin`` with scipy's log_ndtr on the same nodes
+    (common practice, no source: two implementations held equal)."""
+    _fused_against_apart(pset, profile, spin)
+
+
+def _fused_against_apart(pset, profile, spin):
     import diskfield.likelihood as lk
 
     if lk._rule_kernel() is None:
         pytest.skip("numba not importable")
-    model = _demo_model(profile, pset)
+    model = _demo_model(profile, pset, spin=spin)
     kind = model._fused[4]
-    assert (kind == 0).any() and (kind == 1).any()    # closed-form and limits bodies both
+    if spin == "body":
+        assert (kind == 0).any() and (kind == 1).any()    # closed-form and limits bodies
+    assert model.compilation.records.is_limit.any()        # limits in every mode
     rng = np.random.default_rng(3)
     theta = np.column_stack([p.sample(rng, 64) for p in model.priors])
     p = model.params(theta[model._in_support(theta)])
@@ -811,3 +829,35 @@ def test_workspace_reuse_gives_the_same_likelihood(pset):
     assert workspace.size() == grown
     for got in (short, first, again):
         np.testing.assert_array_equal(got, fresh)
+
+
+@pytest.mark.parametrize("spin", ["none", "record"])
+def test_fused_kernel_far_tails_without_and_per_record_spin(pset, spin):
+    """Records with tiny errors put most distance nodes many sds from them, where ln Phi's
+    argument is below -40 (the table's end: the kernel takes the asymptotic series there);
+    the one-call kernel still equals the array integrands with scipy's log_ndtr (common
+    practice, no source)."""
+    import diskfield.likelihood as lk
+
+    if lk._body_kernel() is None:
+        pytest.skip("numba not importable")
+    rng = np.random.default_rng(9)
+    n = 12
+    bodies = [f"B{k // 3}" for k in range(n)]
+    reservoir = ["NC" if k // 3 % 2 == 0 else "CC" for k in range(n)]
+    limits = np.arange(n) % 3 == 2
+    comp = compilation_from_arrays(bodies, reservoir, rng.uniform(1.0, 4.0, n),
+                                   np.full(n, 0.002), is_limit=limits)
+    model = build_model(comp, "ring", spin=spin, priors=pset)
+    theta = np.column_stack([p.sample(rng, 32) for p in model.priors])
+    theta[:, model.parameter_names.index("intrinsic_scatter")] = 1e-3
+    p = model.params(theta[model._in_support(theta)])
+    fused = model._fused_loglike(p)
+    assert fused is not None
+    _, terms, wi, gi, _ = model._steady_terms(p)
+    apart = model._node_sums(terms, wi, gi, len(fused))
+    assert np.array_equal(np.isfinite(fused), np.isfinite(apart))
+    ok = np.isfinite(apart)
+    assert ok.mean() > 0.9
+    np.testing.assert_allclose(fused[ok], apart[ok], rtol=1e-11, atol=1e-9)
+    assert (np.abs(apart[ok]) > 200).any()            # far tails were reached
