@@ -107,6 +107,72 @@ def records_sum(y, wi, z, var, is_lim, lf, lw, start, n_q):
     return out
 
 
+@njit(cache=True, fastmath={"reassoc", "contract"})
+def records_sum_emg(y, wi, z, var, is_lim, lf, lw, start, n_q):
+    """:func:`records_sum` with a spin per record: each detection's EMG density
+    ``recording.emg_logpdf`` and each limit's EMG survival function ``recording.emg_logsf``
+    (the same arguments). In linear space, the EMG's ln Phi from the table (its flushed far
+    tail adds 0 there), and again in logs with the exact ln Phi where that sum underflows
+    (or is implausibly large: an EMG density is at most 1 / sqrt(2 pi V))."""
+    n_p = y.shape[0]
+    n_m = z.shape[0]
+    out = np.zeros(n_p)
+    n_w = var.shape[0]
+    k_isd = np.empty((n_w, n_m))
+    for w in range(n_w):
+        for j in range(n_m):
+            k_isd[w, j] = 1.0 / math.sqrt(var[w, j])
+    for p in range(n_p):
+        w = wi[p]
+        acc = 0.0
+        for j in range(n_m):
+            v = var[w, j]
+            isd = k_isd[w, j]
+            n = np.uint64(n_q[w, j])
+            o = np.uint64(start[w, j])
+            zj = z[j] - y[p]                   # d = lf - zj
+            tot = 0.0
+            if is_lim[j]:
+                for q in range(n):
+                    d = lf[o + q] - zj
+                    tot += (exp_ftz(lw[o + q] + log_ndtr_ftz(-d * isd))
+                            + exp_ftz(lw[o + q] - d + 0.5 * v + log_ndtr_ftz((d - v) * isd)))
+            else:
+                for q in range(n):
+                    d = lf[o + q] - zj
+                    tot += exp_ftz(lw[o + q] - d + 0.5 * v + log_ndtr_ftz((d - v) * isd))
+            if tot >= _LINEAR_FLOOR and tot < 1e300:
+                acc += math.log(tot)
+                continue
+            sd = math.sqrt(v)
+            top = -np.inf
+            for q in range(n):
+                top = max(top, _emg_log_term(lf[o + q] - zj, v, sd, lw[o + q], is_lim[j]))
+            if top == -np.inf or top == np.inf or top != top:
+                acc += top
+                continue
+            tot = 0.0
+            for q in range(n):
+                tot += math.exp(_emg_log_term(lf[o + q] - zj, v, sd, lw[o + q], is_lim[j])
+                                - top)
+            acc += math.log(tot) + top
+        out[p] = acc
+    return out
+
+
+@njit(cache=True)
+def _emg_log_term(d, v, sd, lw, is_lim):
+    """lw + ln EMG density at d, or (a limit) + ln EMG survival function, exact ln Phi."""
+    dens = -d + 0.5 * v + log_ndtr((d - v) / sd)
+    if not is_lim:
+        return lw + dens
+    surv = log_ndtr(-d / sd)
+    top = max(surv, dens)
+    if top == -np.inf:
+        return top
+    return lw + top + math.log1p(math.exp(min(surv, dens) - top))
+
+
 @njit(cache=True)
 def measure_breaks(grid, lf, lp, inverse, sd, scale, hi, consts):
     """``aged._measure_breaks`` with each record's grid, ln T and ln p read through its

@@ -373,11 +373,24 @@ def _records_flat(phi, b, var, ages, spin, bodies=None):
     ln B = phi + ln T(t_q)), shape (W, G, K) (only the ``bodies`` mask (G,) when given; the
     others are 0).
 
-    Each record has its own number of age nodes (from a few to hundreds): the nodes of
-    positive weight of every (walker, record) are laid out flat, one row of K distance nodes
-    each, and summed per record by ``reduceat``, in chunks of whole records.
+    Compiled (``_aged_jit.records_sum``, ``records_sum_emg``: one call per body over its
+    W x K points) when numba is there. Otherwise each record has its own number of age nodes
+    (from a few to hundreds): the nodes of positive weight of every (walker, record) are
+    laid out flat, one row of K distance nodes each, and summed per record by ``reduceat``,
+    in chunks of whole records.
     """
     w, g, k = phi.shape
+    kernel = _kernel()
+    if kernel is not None:
+        out = np.zeros(phi.shape)
+        wi = np.repeat(np.arange(w, dtype=np.int64), k)
+        sums = kernel.records_sum_emg if spin == "record" else kernel.records_sum
+        for gg in range(g):
+            if (bodies is not None and not bodies[gg]) or not (b.det[gg] | b.lim[gg]).any():
+                continue
+            y = np.ascontiguousarray(phi[:, gg].reshape(-1), dtype=float)
+            out[:, gg] = sums(y, wi, *_record_args(b, var, ages, gg)).reshape(w, k)
+        return out
     data = b.det | b.lim
     if bodies is not None:
         data = data & bodies[:, None]
@@ -463,9 +476,9 @@ def compile_kernels() -> None:
     if kernel is None:
         return
     one = np.zeros(1, np.int64)
-    kernel.records_sum(np.zeros(1), one, np.zeros(1), np.ones((1, 1)), np.zeros(1, bool),
-                       np.zeros(1), np.zeros(1), np.zeros((1, 1), np.int64),
-                       np.ones((1, 1), np.int64))
+    for sums in (kernel.records_sum, kernel.records_sum_emg):
+        sums(np.zeros(1), one, np.zeros(1), np.ones((1, 1)), np.zeros(1, bool), np.zeros(1),
+             np.zeros(1), np.zeros((1, 1), np.int64), np.ones((1, 1), np.int64))
     grid = np.linspace(0.0, 1.0, 3)[None, None]
     kernel.measure_breaks(grid, np.zeros((1, 1, 3)), np.zeros((1, 1, 3)),
                           np.zeros((1, 1), np.int64), np.ones((1, 1, 1)), np.ones((1, 1)),
@@ -487,10 +500,7 @@ def _records_at(b, var, ages, g):
     y + ln T(t_q)) at points ``y`` (P,) of walkers ``wi`` (P,)."""
     kernel = _kernel()
     if kernel is not None:
-        data = np.flatnonzero(b.det[g] | b.lim[g])
-        args = (b.z[g, data], np.ascontiguousarray(var[:, g, data]), b.lim[g, data],
-                ages.flat_lf, ages.flat_lw, np.ascontiguousarray(ages.start[:, g, data]),
-                np.ascontiguousarray(ages.count[:, g, data]))
+        args = _record_args(b, var, ages, g)
         # C-contiguous arguments throughout: the layout compile_kernels compiled
         return lambda y, wi: kernel.records_sum(np.ascontiguousarray(y, float),
                                                 np.ascontiguousarray(wi, np.int64), *args)
@@ -510,6 +520,15 @@ def _records_at(b, var, ages, g):
         return out
 
     return records
+
+
+def _record_args(b, var, ages, g):
+    """Body ``g``'s records, variances and age nodes as the compiled age sums take them
+    (``records_sum`` after the points and walkers)."""
+    data = np.flatnonzero(b.det[g] | b.lim[g])
+    return (b.z[g, data], np.ascontiguousarray(var[:, g, data]), b.lim[g, data],
+            ages.flat_lf, ages.flat_lw, np.ascontiguousarray(ages.start[:, g, data]),
+            np.ascontiguousarray(ages.count[:, g, data]))
 
 
 #: Spread of ln T over a body's age nodes, in units of its records' own width, above which the
