@@ -18,7 +18,7 @@ import numpy as np
 from numba import njit
 
 from ._rule_jit import _insertion_sort
-from ._special_jit import exp_ftz, log_ndtr, log_ndtr_ftz
+from ._special_jit import exp_ftz, log_ndtr, log_ndtr_ftz, log_ndtr_vec, log_vec
 
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 #: Below this linear sum the record is summed again in logs (convention, as in aged.py).
@@ -107,21 +107,25 @@ def records_sum(y, wi, z, var, is_lim, lf, lw, start, n_q):
     return out
 
 
-@njit(cache=True, fastmath={"reassoc", "contract"})
+@njit(cache=True, error_model="numpy", fastmath={"reassoc", "contract"})
 def records_sum_emg(y, wi, z, var, is_lim, lf, lw, start, n_q):
     """:func:`records_sum` with a spin per record: each detection's EMG density
     ``recording.emg_logpdf`` and each limit's EMG survival function ``recording.emg_logsf``
     (the same arguments). In linear space, the EMG's ln Phi from the table (its flushed far
     tail adds 0 there), and again in logs with the exact ln Phi where that sum underflows
-    (or is implausibly large: an EMG density is at most 1 / sqrt(2 pi V))."""
+    (or is implausibly large: an EMG density is at most 1 / sqrt(2 pi V)); both in passes
+    over the age nodes that vectorise (the far tail's ln Phi by :func:`log_ndtr_vec`)."""
     n_p = y.shape[0]
     n_m = z.shape[0]
     out = np.zeros(n_p)
     n_w = var.shape[0]
     k_isd = np.empty((n_w, n_m))
+    longest = 0
     for w in range(n_w):
         for j in range(n_m):
             k_isd[w, j] = 1.0 / math.sqrt(var[w, j])
+            longest = max(longest, n_q[w, j])
+    buf = np.empty(longest)
     for p in range(n_p):
         w = wi[p]
         acc = 0.0
@@ -144,33 +148,28 @@ def records_sum_emg(y, wi, z, var, is_lim, lf, lw, start, n_q):
             if tot >= _LINEAR_FLOOR and tot < 1e300:
                 acc += math.log(tot)
                 continue
-            sd = math.sqrt(v)
+            # in logs: lw + ln EMG density (a limit: ln of its survival function)
+            for q in range(n):
+                d = lf[o + q] - zj
+                buf[q] = lw[o + q] - d + 0.5 * v + log_ndtr_vec((d - v) * isd)
+            if is_lim[j]:
+                for q in range(n):
+                    d = lf[o + q] - zj
+                    a = lw[o + q] + log_ndtr_vec(-d * isd)
+                    hi = max(a, buf[q])
+                    buf[q] = hi + log_vec(1.0 + exp_ftz(min(a, buf[q]) - hi))
             top = -np.inf
             for q in range(n):
-                top = max(top, _emg_log_term(lf[o + q] - zj, v, sd, lw[o + q], is_lim[j]))
+                top = max(top, buf[q])
             if top == -np.inf or top == np.inf or top != top:
                 acc += top
                 continue
             tot = 0.0
             for q in range(n):
-                tot += math.exp(_emg_log_term(lf[o + q] - zj, v, sd, lw[o + q], is_lim[j])
-                                - top)
+                tot += exp_ftz(buf[q] - top)
             acc += math.log(tot) + top
         out[p] = acc
     return out
-
-
-@njit(cache=True)
-def _emg_log_term(d, v, sd, lw, is_lim):
-    """lw + ln EMG density at d, or (a limit) + ln EMG survival function, exact ln Phi."""
-    dens = -d + 0.5 * v + log_ndtr((d - v) / sd)
-    if not is_lim:
-        return lw + dens
-    surv = log_ndtr(-d / sd)
-    top = max(surv, dens)
-    if top == -np.inf:
-        return top
-    return lw + top + math.log1p(math.exp(min(surv, dens) - top))
 
 
 @njit(cache=True)

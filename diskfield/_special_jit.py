@@ -213,3 +213,18 @@ def log_ndtr_erfc(x):
     if x > -20.0:
         return math.log(0.5 * math.erfc(-x * _SQRT_HALF))
     return _asymptotic(x)
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def log_ndtr_vec(x):
+    """ln Phi(x) without branches and accurate in both tails: the table (as
+    :func:`log_ndtr_ftz`) for x >= ``_X0`` (-40), the asymptotic series of
+    :func:`_asymptotic` (with :func:`log_vec`) below; NaN for NaN, -inf at -inf. Both are
+    computed and one is selected, so a loop over it vectorises (~2x the cost of the table
+    alone); for the far lower tails of the kernels' log-space sums."""
+    t = log_ndtr_ftz(x)
+    xa = min(x, _X0)
+    r = 1.0 / (xa * xa)
+    series = 1.0 - r * (1.0 - r * (3.0 - r * (15.0 - r * (105.0 - r * 945.0))))
+    asym = -0.5 * xa * xa - log_vec(-xa) - _LN_SQRT_2PI + log_vec(series)
+    return t if x >= _X0 else asym

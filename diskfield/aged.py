@@ -355,14 +355,30 @@ def _integrand_aged(phi, b, var, ages, spin, s):
 
 
 def _records_dedup(phi, b, var, ages, spin, bodies=None):
-    """:func:`_records_flat` on the distinct distance nodes only (zero-width distance panels
+    """:func:`_records_flat` (or its compiled form, ``_aged_jit.records_sum`` and
+    ``records_sum_emg``) on the distinct distance nodes only (zero-width distance panels
     repeat one node; their values are copied), shape (W, G, K)."""
     first = np.ones(phi.shape, bool)
     first[..., 1:] = phi[..., 1:] != phi[..., :-1]
-    order = np.argsort(~first, axis=-1, kind="stable")[..., :max(int(first.sum(-1).max()), 1)]
-    packed = _records_flat(np.take_along_axis(phi, order, axis=-1), b, var, ages, spin, bodies)
-    out = np.empty(phi.shape)
-    np.put_along_axis(out, order, packed, axis=-1)
+    kernel = _kernel()
+    if kernel is not None:
+        # compiled: one call per body over its distinct nodes only (a padded (W, K') block
+        # would evaluate every body at the most nodes any body has: 3-4x the work here)
+        out = np.zeros(phi.shape)
+        sums = kernel.records_sum_emg if spin == "record" else kernel.records_sum
+        for g in range(phi.shape[1]):
+            if (bodies is not None and not bodies[g]) or not (b.det[g] | b.lim[g]).any():
+                continue
+            wi, ki = np.nonzero(first[:, g])
+            out[wi, g, ki] = sums(np.ascontiguousarray(phi[wi, g, ki], dtype=float),
+                                  wi.astype(np.int64), *_record_args(b, var, ages, g))
+    else:
+        order = np.argsort(~first, axis=-1, kind="stable")[..., :max(int(first.sum(-1).max()),
+                                                                      1)]
+        packed = _records_flat(np.take_along_axis(phi, order, axis=-1), b, var, ages, spin,
+                               bodies)
+        out = np.empty(phi.shape)
+        np.put_along_axis(out, order, packed, axis=-1)
     src = np.where(first, np.arange(phi.shape[-1]), 0)
     np.maximum.accumulate(src, axis=-1, out=src)
     return np.take_along_axis(out, src, axis=-1)
@@ -373,24 +389,12 @@ def _records_flat(phi, b, var, ages, spin, bodies=None):
     ln B = phi + ln T(t_q)), shape (W, G, K) (only the ``bodies`` mask (G,) when given; the
     others are 0).
 
-    Compiled (``_aged_jit.records_sum``, ``records_sum_emg``: one call per body over its
-    W x K points) when numba is there. Otherwise each record has its own number of age nodes
-    (from a few to hundreds): the nodes of positive weight of every (walker, record) are
-    laid out flat, one row of K distance nodes each, and summed per record by ``reduceat``,
-    in chunks of whole records.
+    The array code (:func:`_records_dedup` calls the compiled sums instead when numba is
+    there). Each record has its own number of age nodes (from a few to hundreds): the nodes
+    of positive weight of every (walker, record) are laid out flat, one row of K distance
+    nodes each, and summed per record by ``reduceat``, in chunks of whole records.
     """
     w, g, k = phi.shape
-    kernel = _kernel()
-    if kernel is not None:
-        out = np.zeros(phi.shape)
-        wi = np.repeat(np.arange(w, dtype=np.int64), k)
-        sums = kernel.records_sum_emg if spin == "record" else kernel.records_sum
-        for gg in range(g):
-            if (bodies is not None and not bodies[gg]) or not (b.det[gg] | b.lim[gg]).any():
-                continue
-            y = np.ascontiguousarray(phi[:, gg].reshape(-1), dtype=float)
-            out[:, gg] = sums(y, wi, *_record_args(b, var, ages, gg)).reshape(w, k)
-        return out
     data = b.det | b.lim
     if bodies is not None:
         data = data & bodies[:, None]

@@ -245,6 +245,21 @@ def test_branch_free_log_ndtr_is_the_table_above_its_floor():
 
 
 @pytest.mark.skipif(steady._kernel() is None, reason="numba not importable")
+def test_branch_free_log_ndtr_with_its_tail_matches_scipy():
+    # reference library: scipy.special.log_ndtr over both tails, to 1e-12 relative (the
+    # table above -40, the asymptotic series A&S 26.2.12 below), and its edges
+    from diskfield import _special_jit
+
+    x = np.concatenate([-np.geomspace(1e-3, 1e6, 4001), np.linspace(-45.0, 12.0, 20001),
+                        [np.nextafter(-40.0, -41.0), -40.0, 40.0]])
+    got = np.array([_special_jit.log_ndtr_vec(v) for v in x])
+    want = special.log_ndtr(x)
+    np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-11)
+    assert _special_jit.log_ndtr_vec(-np.inf) == -np.inf
+    assert _special_jit.log_ndtr_vec(np.inf) == 0.0 and np.isnan(_special_jit.log_ndtr_vec(np.nan))
+
+
+@pytest.mark.skipif(steady._kernel() is None, reason="numba not importable")
 def test_compiled_log_matches_numpy():
     # reference library: numpy.log over the positive normal doubles and around the reduction's
     # switch at sqrt(2); held to 1 ulp (fdlibm's bound for this reduction and polynomial)
