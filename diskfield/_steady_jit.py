@@ -232,19 +232,20 @@ def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, c
         return acc
 
     def log_partial(r, k, t, h, spread):
-        """ln int_0^t h exp(q~(s)) ds for panel ``k`` of row ``r`` (``steady._log_partial``)."""
-        need = spread * t
-        if need <= 6.0:
+        """ln int_0^t h exp(q~(s)) ds for panel ``k`` of row ``r`` (``steady._log_partial``,
+        whose ``need`` is ``steep`` here)."""
+        steep = spread * t
+        if steep <= 6.0:
             shift = coef[r, k, 0]
             s = 0.0
-            if need <= 1.5:
+            if steep <= 1.5:
                 for j in range(x3.shape[0]):
                     s += math.exp(horner(r, k, t * x3[j]) - shift) * w3[j]
             else:
                 for j in range(x6.shape[0]):
                     s += math.exp(horner(r, k, t * x6[j]) - shift) * w6[j]
             return math.log(s * (t * h)) + shift
-        n_sub = min(int(math.ceil(need / sub_range)), 32)
+        n_sub = min(int(math.ceil(steep / sub_range)), 32)
         frac = 1.0 / n_sub
         ln_frac = math.log(frac)
         best = -np.inf
@@ -358,17 +359,17 @@ def table_reads(brk, q, tail0, phi, row, xn, wn, amat, x3, w3, x6, w6, x8, w8, c
         if not (t > 0 and live[r, p] and read_spread[r, p] >= 0.0):
             out[i] = log_c[r, p] - p_i
             continue
-        need = read_spread[r, p] * t
-        if need > sub_range:
+        steep = read_spread[r, p] * t       # log_partial's "need": nats across [0, t]
+        if steep > sub_range:
             out[i] = _logaddexp(log_c[r, p], log_partial(r, p, t, h, read_spread[r, p])) - p_i
             continue
         base[i] = (r * (nb - 1) + p) * n
         t_at[i], th_at[i] = t, t * h
         out[i] = log_c[r, p]            # the passes below add the partial and take phi off
-        if need <= 1.5:
+        if steep <= 1.5:
             pick3[n3] = i
             n3 += 1
-        elif need <= 6.0:
+        elif steep <= 6.0:
             pick6[n6] = i
             n6 += 1
         else:
