@@ -17,7 +17,7 @@ import math
 import numpy as np
 from numba import njit
 
-from ._rule_jit import _insertion_sort
+from ._rule_jit import _insertion_sort, panel_nodes
 from ._special_jit import exp_ftz, log_ndtr, log_ndtr_ftz, log_ndtr_vec, log_vec
 
 _LN_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
@@ -275,27 +275,17 @@ def lay_out_nodes(measure, lo, hi, kind, a, b, gl_x, gl_logw):
                     c0 = 0.0
                     inv = 0.0
                 flat = (w * n_g + g) * n_r + r
-                slot = 0
-                for i in range(n_b - 1):
-                    h = brk[i + 1] - brk[i]
-                    if not h > 0:
-                        continue
-                    lh = math.log(h)
-                    for j in range(n_n):
-                        x = brk[i] + h * gl_x[j]
-                        t[pos] = x
-                        val = lh + gl_logw[j]
-                        if kd == 0:
-                            z = (x - pa) * inv
-                            val += -0.5 * z * z + c0
-                        elif kd == 1:
-                            val += c0
-                        lw[pos] = val
-                        row[pos] = flat
-                        col[pos] = slot
-                        slot += 1
-                        pos += 1
-                n_q = max(n_q, slot)
+                end = panel_nodes(brk, n_b, gl_x, gl_logw, t, lw, pos)
+                for k in range(pos, end):
+                    if kd == 0:
+                        z = (t[k] - pa) * inv
+                        lw[k] += -0.5 * z * z + c0
+                    elif kd == 1:
+                        lw[k] += c0
+                    row[k] = flat
+                    col[k] = k - pos
+                n_q = max(n_q, end - pos)
+                pos = end
     return t[:pos], lw[:pos], row[:pos], col[:pos], max(n_q, 1)
 
 

@@ -198,6 +198,24 @@ def _insertion_sort(a, m):
         a[j + 1] = x
 
 
+@njit(cache=True, inline="always")
+def panel_nodes(brk, m, gl_x, gl_logw, xs, lws, at):
+    """The Gauss–Legendre nodes and ln(panel width x weight) of the panels of positive width
+    of the sorted breaks ``brk[:m]`` (``gl_x`` on [0, 1], ``gl_logw`` ln weights), written to
+    ``xs``, ``lws`` from index ``at``; returns the index after the last node written."""
+    k = at
+    for i in range(m - 1):
+        h = brk[i + 1] - brk[i]
+        if not h > 0:
+            continue
+        lh = math.log(h)
+        for j in range(gl_x.shape[0]):
+            xs[k] = brk[i] + h * gl_x[j]
+            lws[k] = lh + gl_logw[j]
+            k += 1
+    return k
+
+
 @njit(cache=True, fastmath={"contract"})
 def _merge_next(a, n_a, n_b, buf):
     """Merge the sorted runs a[:n_a] and a[n_a:n_a + n_b] in place (``buf`` scratch of at
@@ -630,16 +648,7 @@ def _rule(form, n_rings, has_break, min_factor, level, scale, lo, hi, base, fixe
             _insertion_sort(brk, m)
             # Gauss–Legendre nodes of the panels of positive width, in passes over the body's
             # nodes that the compiler vectorises (ln x, ln R, the prior, the EMG)
-            k_t = 0
-            for i in range(m - 1):
-                h = brk[i + 1] - brk[i]
-                if not h > 0:
-                    continue
-                lh = math.log(h)
-                for j in range(n):
-                    xs[k_t] = brk[i] + h * gl_x[j]
-                    lws[k_t] = lh + gl_logw[j]
-                    k_t += 1
+            k_t = panel_nodes(brk, m, gl_x, gl_logw, xs, lws, 0)
             _field_nodes(xs, phs, tmp, lxs, k_t, c, n_rings, has_break, min_factor)
             if fused:
                 p_c, p_k, p_mu, p_s = prior[g, 0], prior[g, 1], prior[g, 2], prior[g, 3]
