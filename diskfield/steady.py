@@ -179,8 +179,9 @@ def _compiled_reads(phi, wi, gi, gx, b, args, n_nodes):
     flat = (lambda a: np.ascontiguousarray(np.broadcast_to(a, (w, g) + a.shape[2:]).reshape(
         (w * g,) + a.shape[2:])))
     return workspace.call(
-        _kernel().body_spin_with_limits, np.ascontiguousarray(phi, float), wi * g + pos[gi], flat(z[None]), flat(vl),
-        flat(lim[None]), flat(has_det), flat(np.where(has_det, zbar, 0.0)),
+        _kernel().body_spin_with_limits, np.ascontiguousarray(phi, float), wi * g + pos[gi],
+        flat(z[None]), flat(vl), flat(lim[None]), flat(has_det),
+        flat(np.where(has_det, zbar, 0.0)),
         flat(np.where(has_det, v, 1.0)), flat(np.where(has_det, ln_k, 0.0)),
         *limits_rules(n_nodes))
 
